@@ -1,0 +1,3 @@
+from shapes.cli import main
+
+raise SystemExit(main())
