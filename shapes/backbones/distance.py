@@ -1,0 +1,96 @@
+"""Continuous-filter convolutions on neighbour distances, in the style of SchNet.
+
+Every quantity the network sees is a distance: between neighbours, and from each point to the
+cloud's centroid. Distances do not change under rotations, reflections or translations, so the
+features are E(3)-invariant by construction, and the network is blind to handedness: a
+left-hand part and its right-hand twin give the same features.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+from torch import nn
+
+from shapes.backbones._base import Backbone, check_points, masked_centroid, masked_max, masked_mean
+from shapes.backbones._radial import GaussianBasis, cosine_cutoff
+from shapes.errors import ConfigError, InputError
+from shapes.geometry import gather_neighbours, knn_graph
+
+__all__ = ["DistanceBackbone", "DistanceConfig"]
+
+
+@dataclass
+class DistanceConfig:
+    hidden: int = 64  # feature width; 64 trains a 14-class demo in a few minutes on 2 cores
+    layers: int = 3  # interaction blocks; each widens the receptive field by one neighbourhood
+    k: int = 16  # neighbours per point; 16 spans a few mm on a 1024-point part
+    num_radial: int = 24  # Gaussians resolving distances in [0, cutoff]
+    cutoff: float = 1.0  # in units of the RMS radius (clouds are normalised to 1); filters fade to 0 there
+    centroid_radial: int = 16  # Gaussians of the distance to the centroid, the initial per-point feature
+
+
+class Interaction(nn.Module):
+    """One continuous-filter convolution block with a residual update.
+
+    h_i ← h_i + MLP( mean_j W(d_ij) ⊙ Linear(h_j) ), W from a filter-generating network on the
+    Gaussian expansion of d_ij, scaled by a smooth cutoff.
+    """
+
+    def __init__(self, hidden: int, num_radial: int):
+        super().__init__()
+        self.filter = nn.Sequential(nn.Linear(num_radial, hidden), nn.SiLU(), nn.Linear(hidden, hidden))
+        self.into = nn.Linear(hidden, hidden, bias=False)
+        self.out = nn.Sequential(nn.Linear(hidden, hidden), nn.SiLU(), nn.Linear(hidden, hidden))
+        self.norm = nn.LayerNorm(hidden)
+
+    def forward(self, h, index, rbf, weight):
+        # h (B, N, H); index (B, N, k); rbf (B, N, k, R); weight (B, N, k) cutoff × valid
+        w = self.filter(rbf) * weight.unsqueeze(-1)  # (B, N, k, H)
+        msg = gather_neighbours(self.into(h), index) * w  # (B, N, k, H)
+        agg = msg.sum(2) / weight.sum(2, keepdim=True).clamp_min(1e-6)  # (B, N, H)
+        return self.norm(h + self.out(agg))
+
+
+class DistanceBackbone(Backbone):
+    """SchNet-style continuous-filter convolution network.
+
+    Shape:
+        points (B, N, 3), mask (B, N) -> features (B, 2 * hidden)
+    """
+
+    name = "distance"
+    Config = DistanceConfig
+
+    def __init__(self, **kwargs):
+        super().__init__(**kwargs)
+        c = self.config
+        for field in ("hidden", "layers", "k", "num_radial", "centroid_radial"):
+            if getattr(c, field) < 1:
+                raise ConfigError(f"distance needs {field} >= 1, got {getattr(c, field)}.")
+        if not c.cutoff > 0:
+            raise ConfigError(f"distance needs cutoff > 0, got {c.cutoff}.")
+        self.rbf = GaussianBasis(c.num_radial, c.cutoff)
+        self.centroid_rbf = GaussianBasis(c.centroid_radial, 3.0)  # normalised parts lie within ~3 RMS radii
+        self.embed = nn.Sequential(nn.Linear(c.centroid_radial, c.hidden), nn.SiLU(), nn.Linear(c.hidden, c.hidden))
+        self.blocks = nn.ModuleList(Interaction(c.hidden, c.num_radial) for _ in range(c.layers))
+        self.symmetry = "E3"
+        self.out_features = 2 * c.hidden
+
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+        mask = check_points(points, mask)
+        c = self.config
+        smallest = int(mask.sum(1).min())
+        if c.k >= smallest:
+            raise InputError(f"k = {c.k} neighbours needs clouds of at least {c.k + 1} points, got {smallest}.")
+        nb = knn_graph(points, c.k, mask=mask)
+        rel = gather_neighbours(points, nb.index) - points.unsqueeze(2)  # (B, N, k, 3)
+        d = rel.square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N, k)
+        weight = cosine_cutoff(d, c.cutoff) * nb.valid.to(points.dtype)  # (B, N, k)
+        rbf = self.rbf(d)  # (B, N, k, R)
+        r0 = (points - masked_centroid(points, mask)).square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N)
+        h = self.embed(self.centroid_rbf(r0))  # (B, N, H)
+        for block in self.blocks:
+            h = block(h, nb.index, rbf, weight)
+        return torch.cat([masked_max(h, mask), masked_mean(h, mask)], dim=-1)  # (B, 2H)

@@ -1,0 +1,241 @@
+"""The ``shapes`` command: one verb per job; every verb takes Hydra overrides (``key=value``).
+
+Hydra lives here and in ``conf/``; the jobs below it take plain arguments.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+from shapes.errors import ConfigError, ShapesError
+
+__all__ = ["main", "VERBS", "CONF_DIR"]
+
+CONF_DIR = Path(__file__).resolve().parent.parent / "conf"
+
+VERBS: dict[str, str] = {
+    "parts": "write the demo catalog of CAD-like parts (meshes + catalog.json) to meshes=<folder>",
+    "sample": "turn a catalog folder (meshes=...) into point-cloud shards (data=...)",
+    "train": "train a classifier (backbone=<name>) on the shards; -m sweeps over values",
+    "eval": "score a trained run (run=<folder>|latest) under random poses and mirror images",
+    "demo": "parts → sample → train two backbones → evaluate → one combined report",
+}
+
+FLAGS = {"-m", "--multirun", "--traceback", "-h", "--help"}
+
+_verb: str = ""  # the verb the Hydra task below dispatches on
+
+
+def _usage() -> str:
+    width = max(map(len, VERBS))
+    lines = ["usage: shapes <verb> [key=value ...] [-m] [--traceback] [--help]", "", "verbs:"]
+    lines += [f"  {v:<{width}}  {text}" for v, text in VERBS.items()]
+    lines += ["", "Run `shapes <verb> --help` for the options of a verb; options are Hydra overrides."]
+    return "\n".join(lines)
+
+
+def _error(message: str) -> int:
+    print(f"error: {' '.join(str(message).split())}", file=sys.stderr)
+    return 2
+
+
+def _groups() -> dict[str, list[str]]:
+    return {d.name: sorted(p.stem for p in d.glob("*.yaml")) for d in CONF_DIR.iterdir() if d.is_dir()}
+
+
+def _compose(overrides: list[str]):
+    from hydra import compose, initialize_config_dir
+    from hydra.core.global_hydra import GlobalHydra
+
+    GlobalHydra.instance().clear()
+    with initialize_config_dir(config_dir=str(CONF_DIR), version_base=None):
+        return compose(config_name="config", overrides=overrides)
+
+
+def _check_overrides(overrides: list[str], multirun: bool) -> None:
+    """Compose the config once per swept value so a bad option fails before any work starts."""
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+
+    try:
+        parsed = OverridesParser.create().parse_overrides(overrides)
+    except Exception as exc:  # hydra's parse errors carry a multi-line message
+        raise ConfigError(f"cannot read the options {overrides}: {str(exc).splitlines()[0]}") from exc
+    groups = _groups()
+    variants: list[list[str]] = [[]]
+    for ov in parsed:
+        key = ov.get_key_element()
+        values = list(ov.sweep_string_iterator()) if ov.is_sweep_override() else [ov.get_value_element_as_str()]
+        if ov.is_sweep_override() and not multirun:
+            raise ConfigError(f"'{key}' has several values {values}; add -m to sweep over them.")
+        if key in groups:
+            for v in values:
+                if v not in groups[key]:
+                    raise ConfigError(f"unknown {key} '{v}'; choose one of: {', '.join(groups[key])}.")
+        if key.startswith("hydra"):
+            continue
+        variants = [prev + [f"{key}={v}"] for prev in variants for v in values]
+    for variant in variants[:64]:
+        try:
+            _compose(variant)
+        except Exception as exc:
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise ConfigError(f"bad option in {variant}: {first}") from exc
+
+
+def _verb_help(verb: str, overrides: list[str]) -> str:
+    from omegaconf import OmegaConf
+
+    cfg = _compose(overrides)
+    shown = {k: v for k, v in OmegaConf.to_container(cfg, resolve=False).items()}
+    lines = [f"shapes {verb}: {VERBS[verb]}", "",
+             f"usage: shapes {verb} [key=value ...]" + (" [-m]" if verb == "train" else "") + " [--traceback]", "",
+             "choices:"]
+    lines += [f"  {g}: {', '.join(opts)}" for g, opts in _groups().items()]
+    lines += ["", "options (current values; override any as key=value):", OmegaConf.to_yaml(shown).rstrip()]
+    return "\n".join(lines)
+
+
+def _plain(node):
+    from omegaconf import OmegaConf
+
+    return OmegaConf.to_container(node, resolve=True) if OmegaConf.is_config(node) else node
+
+
+def _backbone_from_file(name: str):
+    """Instantiate ``conf/backbone/<name>.yaml`` (used by the demo, which trains several)."""
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
+
+    path = CONF_DIR / "backbone" / f"{name}.yaml"
+    if not path.is_file():
+        raise ConfigError(f"unknown backbone '{name}'; choose one of: {', '.join(_groups()['backbone'])}.")
+    return instantiate(OmegaConf.load(path))
+
+
+def _latest_run(run: str) -> str:
+    if run != "latest":
+        return run
+    found = sorted(Path("runs").glob("**/checkpoint.pt"), key=lambda p: p.stat().st_mtime)
+    if not found:
+        raise ConfigError("run=latest but no trained run exists under runs/; train one with `shapes train` "
+                          "or name it with run=<folder>.")
+    return str(found[-1].parent)
+
+
+def _run_parts(cfg) -> None:
+    from shapes.parts import write_demo_catalog
+
+    out = write_demo_catalog(cfg.parts.out, seed=cfg.seed)
+    print(f"wrote the demo catalog to {out}/ (catalog.json lists classes, twins and standards)")
+
+
+def _run_sample(cfg) -> None:
+    from shapes.data import build_dataset, read_meta
+
+    s = cfg.sample
+    out = build_dataset(cfg.meshes, cfg.data, points=s.points, copies=_plain(s.copies), mode=s.mode,
+                        scan_fraction=s.scan_fraction, oversample=s.oversample, noise=s.noise, seed=cfg.seed,
+                        progress=True)
+    meta = read_meta(out)
+    print(f"wrote {sum(meta['counts'].values())} clouds of {s.points} points "
+          f"({', '.join(f'{k} {v}' for k, v in meta['counts'].items())}) for {len(meta['classes'])} classes to {out}/")
+
+
+def _run_train(cfg) -> None:
+    from hydra.core.hydra_config import HydraConfig
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
+
+    from shapes._atomic import write_text
+    from shapes.train import TrainSettings, train_classifier
+
+    run_dir = Path(HydraConfig.get().runtime.output_dir)
+    backbone = instantiate(cfg.backbone)
+    settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
+                             extra={"config": OmegaConf.to_container(cfg, resolve=True)})
+    ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+    write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))
+    print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
+
+
+def _run_eval(cfg) -> None:
+    from shapes.evaluate import evaluate_run
+    from shapes.report import run_report
+
+    e = cfg.eval
+    metrics = evaluate_run(_latest_run(cfg.run), None, poses=tuple(e.poses), repeats=e.repeats,
+                           seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
+    report = run_report(metrics, Path(metrics["checkpoint"]).parent)
+    for regime, m in metrics["regimes"].items():
+        print(f"{regime:>8}: accuracy {100 * m['accuracy']:5.1f}%")
+    print(f"report: {report}")
+
+
+def _run_demo(cfg) -> None:
+    from shapes.demo import run_demo
+
+    d = cfg.demo
+    factories = {name: (lambda name=name: _backbone_from_file(name)) for name in d.backbones}
+    for name in d.backbones:
+        factories[name]()  # fail fast on a bad backbone name, before any work
+    report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
+                      seed=cfg.seed, threads=cfg.train.threads)
+    print(f"demo report: {report}")
+
+
+def _task(cfg) -> None:
+    try:
+        globals()[f"_run_{_verb}"](cfg)
+    except ShapesError as exc:
+        if os.environ.get("SHAPES_TRACEBACK"):
+            raise
+        raise SystemExit(_error(exc)) from None
+
+
+def main(argv: list[str] | None = None) -> int:
+    global _verb
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if not argv or argv[0] in ("-h", "--help", "help"):
+        print(_usage())
+        return 0
+    verb, rest = argv[0], argv[1:]
+    if verb not in VERBS:
+        return _error(f"unknown verb '{verb}'; choose one of: {', '.join(VERBS)}.")
+    flags = [a for a in rest if a.startswith("-")]
+    overrides = [a for a in rest if not a.startswith("-")]
+    bad = [f for f in flags if f not in FLAGS]
+    if bad:
+        return _error(f"unknown flag {bad[0]}; expected key=value overrides or one of {', '.join(sorted(FLAGS))}.")
+    multirun = "-m" in flags or "--multirun" in flags
+    if multirun and verb != "train":
+        return _error(f"-m (sweeps) is for 'shapes train', not 'shapes {verb}'.")
+    if "--traceback" in flags:
+        os.environ["SHAPES_TRACEBACK"] = "1"
+        os.environ["HYDRA_FULL_ERROR"] = "1"
+    try:
+        _check_overrides(overrides, multirun)
+        if "-h" in flags or "--help" in flags:
+            print(_verb_help(verb, overrides))
+            return 0
+    except ShapesError as exc:
+        if os.environ.get("SHAPES_TRACEBACK"):
+            raise
+        return _error(exc)
+
+    import hydra
+
+    _verb = verb
+    task = hydra.main(config_path=str(CONF_DIR), config_name="config", version_base=None)(_task)
+    saved = sys.argv
+    sys.argv = [f"shapes {verb}"] + (["-m"] if multirun else []) + overrides + [f"hydra.job.name={verb}"]
+    if verb != "train":
+        sys.argv.append("hydra.run.dir=.")  # only `train` makes a run folder of its own
+    try:
+        task()
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    finally:
+        sys.argv = saved
+    return 0

@@ -1,0 +1,58 @@
+"""The demo job: parts → sample → train several backbones briefly → evaluate → one report.
+
+Set in our own scenario: a maintenance store sorting a mixed bin of returned parts.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from pathlib import Path
+from typing import Callable
+
+from shapes.backbones import Backbone
+from shapes.data import build_dataset, read_meta
+from shapes.evaluate import evaluate_run
+from shapes.report import comparison_report, run_report
+from shapes.train import TrainSettings, train_classifier
+
+__all__ = ["run_demo"]
+
+
+def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[str, Callable[[], Backbone]], *,
+             points: int = 512, copies: dict | None = None, epochs: int = 12, seed: int = 0,
+             threads: int | None = None, repeats: int = 3) -> Path:
+    """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path."""
+    started = time.perf_counter()
+    meshes, out = Path(meshes), Path(out)
+    if not (meshes / "catalog.json").is_file() and not any(meshes.glob("*/")):
+        from shapes.parts import write_demo_catalog
+
+        print(f"[demo] writing the demo catalog to {meshes}/", flush=True)
+        write_demo_catalog(meshes, seed=seed)
+    data = out / "data"
+    print(f"[demo] sampling {points}-point clouds from {meshes}/", flush=True)
+    build_dataset(meshes, data, points=points, copies=copies or {"train": 6, "val": 2, "test": 3}, seed=seed)
+    meta = read_meta(data)
+    runs = {}
+    for name, make in backbones.items():
+        t0 = time.perf_counter()
+        print(f"[demo] training '{name}' for {epochs} epochs on {meta['counts']['train']} clouds", flush=True)
+        backbone = make()
+        settings = TrainSettings(epochs=epochs, seed=seed, threads=threads)
+        train_classifier(backbone, data, out / name, settings)
+        metrics = evaluate_run(out / name, data, repeats=repeats, seed=seed, threads=threads)
+        metrics["train_seconds"] = time.perf_counter() - t0
+        run_report(metrics, out / name)
+        runs[name] = metrics
+        print(f"[demo] {name}: " + ", ".join(f"{r} {100 * m['accuracy']:.0f}%" for r, m in metrics["regimes"].items())
+              + f" ({metrics['train_seconds']:.0f} s)", flush=True)
+    minutes = (time.perf_counter() - started) / 60
+    handed = [c for c, h in meta["handed"].items() if h]
+    preamble = (f"A maintenance store sorts a mixed bin of returned parts: {len(meta['classes'])} classes, "
+                f"{len(handed)} of them handed (mirror twins: "
+                + ", ".join(f"{c} ↔ {meta['twins'][c]}" for c in handed if c < meta["twins"][c])
+                + f"). Each backbone trained for {epochs} epochs on clouds of {points} points in the CAD frame "
+                f"(aligned poses) and was tested on held-out part instances. Whole demo: {minutes:.1f} min.")
+    return comparison_report(runs, out, title="shapes demo: part classification under random poses and mirror images",
+                             preamble=preamble)

@@ -1,0 +1,174 @@
+"""The evaluation job: score a trained classifier under the pose-robustness protocol.
+
+Test regimes: ``aligned`` (CAD frame), ``z`` (turned about the vertical axis), ``so3``
+(uniform random rotation) and ``mirror`` (a reflection then a uniform rotation, scored against
+the mirror-twin map: a handed part's mirror image must be called its twin, an achiral part's
+mirror image keeps its class). Also accuracy against rotation angle and sensor noise, and the
+measured invariance error of the logits, so a claim of invariance is a number.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+import torch
+from sklearn.metrics import balanced_accuracy_score, confusion_matrix
+
+from shapes._atomic import write_json
+from shapes._runtime import set_threads
+from shapes.backbones import Classifier, build_backbone
+from shapes.data import load_split
+from shapes.errors import ConfigError, DataError
+from shapes.geometry import POSE_REGIMES, axis_angle_to_matrix, random_improper, random_poses, random_rotations
+from shapes.seeding import torch_generator
+from shapes.train import CHECKPOINT
+
+__all__ = ["load_classifier", "find_checkpoint", "logits_under_poses", "score", "invariance_errors",
+           "evaluate_run"]
+
+ANGLES_DEG = (0, 30, 60, 90, 120, 150, 180)
+NOISE_LEVELS = (0.0, 0.01, 0.02, 0.05)  # in RMS radii of the normalised part
+
+
+def find_checkpoint(run: str | os.PathLike) -> Path:
+    """A run folder or a checkpoint file → the checkpoint path; DataError when there is none."""
+    path = Path(run)
+    if path.is_dir():
+        path = path / CHECKPOINT
+    if not path.is_file():
+        raise DataError(f"no checkpoint at '{path}'; expected a run folder written by 'shapes train' or a {CHECKPOINT} file.")
+    return path
+
+
+def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") -> tuple[Classifier, dict]:
+    """Rebuild the classifier from a checkpoint (``weights_only=True``); returns (model in eval mode, meta)."""
+    path = find_checkpoint(run)
+    try:
+        payload = torch.load(path, map_location=device, weights_only=True)
+        meta = payload["meta"]
+        backbone = build_backbone(meta["backbone"]["name"], **meta["backbone"]["options"])
+        model = Classifier(backbone, len(meta["classes"]), **meta["head"])
+        model.load_state_dict(payload["state_dict"])
+    except (KeyError, RuntimeError, EOFError, TypeError) as exc:
+        raise DataError(f"checkpoint '{path}' cannot be read: {str(exc).splitlines()[0]}") from exc
+    return model.to(device).eval(), meta
+
+
+@torch.no_grad()
+def _logits(model, points: torch.Tensor, batch_size: int) -> torch.Tensor:
+    return torch.cat([model(points[i:i + batch_size]) for i in range(0, len(points), batch_size)])
+
+
+@torch.no_grad()
+def logits_under_poses(model, points: torch.Tensor, rotations: torch.Tensor, batch_size: int = 32) -> torch.Tensor:
+    """Logits of ``points (M, N, 3)`` each turned by its own ``rotations (M, 3, 3)`` → (M, classes)."""
+    return _logits(model, points @ rotations.transpose(-1, -2), batch_size)
+
+
+def score(pred: np.ndarray, target: np.ndarray, classes: list[str], handed: dict[str, bool]) -> dict:
+    """Overall, balanced, per-class and handed/achiral accuracy plus the confusion matrix."""
+    labels = np.arange(len(classes))
+    handed_mask = np.array([handed[classes[t]] for t in target])
+    per_class = {}
+    for i, name in enumerate(classes):
+        sel = target == i
+        per_class[name] = float((pred[sel] == i).mean()) if sel.any() else None
+    return {
+        "accuracy": float((pred == target).mean()),
+        "balanced_accuracy": float(balanced_accuracy_score(target, pred)),
+        "handed_accuracy": float((pred[handed_mask] == target[handed_mask]).mean()) if handed_mask.any() else None,
+        "achiral_accuracy": float((pred[~handed_mask] == target[~handed_mask]).mean()) if (~handed_mask).any() else None,
+        "per_class": per_class,
+        "confusion": confusion_matrix(target, pred, labels=labels).tolist(),
+        "count": int(len(target)),
+    }
+
+
+@torch.no_grad()
+def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 0) -> dict:
+    """Largest change of the logits under random rotations and under reflections, relative to
+    the largest logit magnitude. An invariant model shows float round-off (~1e-6 in float32);
+    a model that sees handedness must change under reflections."""
+    gen = torch_generator(seed)
+    base = _logits(model, points, 64)
+    scale = float(base.abs().max().clamp_min(1e-12))
+    out = {}
+    for name, sampler in (("rotation", random_rotations), ("reflection", random_improper)):
+        worst = 0.0
+        for _ in range(trials):
+            rot = sampler(len(points), generator=gen, dtype=points.dtype)
+            worst = max(worst, float((logits_under_poses(model, points, rot, 64) - base).abs().max()) / scale)
+        out[name] = worst
+    # translation: every backbone is built translation invariant; measure it too
+    shift = torch.randn(len(points), 1, 3, generator=gen, dtype=points.dtype) * 5.0
+    out["translation"] = float((_logits(model, points + shift, 64) - base).abs().max()) / scale
+    return out
+
+
+def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = None, *,
+                 poses: tuple[str, ...] = POSE_REGIMES, repeats: int = 3, seed: int = 0,
+                 batch_size: int = 32, threads: int | None = None, sweeps: bool = True,
+                 write: bool = True) -> dict:
+    """Score the checkpoint in ``run`` on the test split; write ``metrics.json`` beside it.
+
+    Each test cloud is scored under ``repeats`` random poses per regime.
+    """
+    unknown = [p for p in poses if p not in POSE_REGIMES]
+    if unknown:
+        raise ConfigError(f"eval.poses has unknown regime(s) {unknown}; choose from {', '.join(POSE_REGIMES)}.")
+    if repeats < 1:
+        raise ConfigError(f"eval.repeats must be >= 1, got {repeats}.")
+    set_threads(threads)
+    ckpt = find_checkpoint(run)
+    model, meta = load_classifier(ckpt)
+    data_dir = data_dir or meta["data"]["dir"]
+    test = load_split(data_dir, "test")
+    classes = list(meta["classes"])
+    if list(test.meta["classes"]) != classes:
+        raise DataError(f"the classes in '{data_dir}' differ from the checkpoint's: "
+                        f"{len(test.meta['classes'])} vs {len(classes)} classes.")
+    twin_index = np.array([classes.index(meta["twins"][c]) for c in classes])
+    x = torch.as_tensor(test.points, dtype=torch.float32)
+    y = np.asarray(test.labels)
+    gen = torch_generator(seed)
+    results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": meta["backbone"],
+                     "repeats": repeats, "test_clouds": int(len(x)), "classes": classes, "regimes": {}}
+    for regime in poses:
+        preds, targets = [], []
+        for _ in range(repeats):
+            rot = random_poses(regime, len(x), generator=gen)
+            preds.append(logits_under_poses(model, x, rot, batch_size).argmax(-1).numpy())
+            targets.append(twin_index[y] if regime == "mirror" else y)
+        results["regimes"][regime] = score(np.concatenate(preds), np.concatenate(targets), classes, meta["handed"])
+    results["invariance"] = invariance_errors(model, x[: min(len(x), 32)], seed=seed)
+    if sweeps:
+        results["angle_sweep"] = _angle_sweep(model, x, y, gen, batch_size)
+        results["noise_sweep"] = _noise_sweep(model, x, y, gen, batch_size)
+    if write:
+        write_json(ckpt.parent / "metrics.json", results)
+    return results
+
+
+def _angle_sweep(model, x, y, gen, batch_size) -> dict:
+    """Accuracy when each cloud is turned by a fixed angle about a random axis."""
+    out = {}
+    for deg in ANGLES_DEG:
+        axis = torch.randn(len(x), 3, generator=gen)
+        rot = axis_angle_to_matrix(axis, torch.full((len(x),), math.radians(deg)))
+        pred = logits_under_poses(model, x, rot, batch_size).argmax(-1).numpy()
+        out[str(deg)] = float((pred == y).mean())
+    return out
+
+
+def _noise_sweep(model, x, y, gen, batch_size) -> dict:
+    """Accuracy under uniform random poses with Gaussian sensor noise of a given size."""
+    out = {}
+    for sigma in NOISE_LEVELS:
+        rot = random_rotations(len(x), generator=gen)
+        noisy = x + sigma * torch.randn(x.shape, generator=gen)
+        pred = logits_under_poses(model, noisy, rot, batch_size).argmax(-1).numpy()
+        out[str(sigma)] = float((pred == y).mean())
+    return out
