@@ -1,0 +1,56 @@
+"""Geometry core: poses, real spherical harmonics, Wigner-D, coupling coefficients, neighbourhoods.
+
+torch and numpy only. Conventions (rotations act on column vectors, harmonics' order and phase)
+are stated in each module's docstring and in DESIGN.md, and checked against scipy/sympy in tests.
+"""
+
+from shapes.geometry._harmonics import L_MAX, harmonics_dim, spherical_harmonics
+from shapes.geometry._neighbours import (
+    Neighbours,
+    gather_neighbours,
+    knn_graph,
+    radius_graph,
+    relative_vectors,
+)
+from shapes.geometry._poses import (
+    POSE_REGIMES,
+    apply_pose,
+    axis_angle_to_matrix,
+    matrix_to_axis_angle,
+    quaternion_to_matrix,
+    random_improper,
+    random_poses,
+    random_reflections,
+    random_rotations,
+    random_z_rotations,
+    reflection,
+    rotation_angle,
+    rotations_about_z,
+)
+
+__all__ = [
+    # poses
+    "POSE_REGIMES",
+    "random_rotations",
+    "quaternion_to_matrix",
+    "axis_angle_to_matrix",
+    "matrix_to_axis_angle",
+    "rotation_angle",
+    "rotations_about_z",
+    "random_z_rotations",
+    "reflection",
+    "random_reflections",
+    "random_improper",
+    "random_poses",
+    "apply_pose",
+    # harmonics
+    "L_MAX",
+    "harmonics_dim",
+    "spherical_harmonics",
+    # neighbourhoods
+    "Neighbours",
+    "knn_graph",
+    "radius_graph",
+    "gather_neighbours",
+    "relative_vectors",
+]

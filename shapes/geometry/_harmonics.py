@@ -1,0 +1,142 @@
+"""Real spherical harmonics by recurrence, batched and differentiable.
+
+Convention (DESIGN.md): orthonormal on the unit sphere, order ``m = -l..l`` stored at ``m + l``.
+From the complex ``Y_l^m`` with the Condon-Shortley phase (as ``scipy.special.sph_harm_y``
+returns them)::
+
+    m > 0:  sqrt(2) (-1)^m Re Y_l^m
+    m = 0:  Y_l^0
+    m < 0:  sqrt(2) (-1)^m Im Y_l^|m|
+
+so degree 1 is ``sqrt(3 / 4 pi) * (y, z, x) / r``. Written as polynomials,
+``Y_lm = sqrt(2) Pbar_l^|m|(z, r^2) * (C_m | S_|m|)`` where ``C_m + i S_m = (x + i y)^m`` and
+``Pbar`` is the normalised associated Legendre polynomial divided by ``sin^m``; both follow
+three-term recurrences whose coefficients are computed once in float64. No per-(l, m) closed forms.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+import operator
+
+import torch
+
+from shapes.errors import InputError
+from shapes.geometry._checks import shape_of
+
+__all__ = ["L_MAX", "spherical_harmonics", "harmonics_dim"]
+
+# Highest degree served. The normalised recurrence has no overflow or cancellation problem far
+# beyond this; 12 keeps the float64 error below 1e-13 against scipy (tested) and covers every
+# backbone we plan (they use l <= 6).
+L_MAX = 12
+
+
+def harmonics_dim(l_max: int) -> int:
+    """Number of components of degrees ``0..l_max`` together: ``(l_max + 1)^2``."""
+    return (l_max + 1) ** 2
+
+
+@functools.lru_cache(maxsize=None)
+def _coefficients(l_max: int) -> dict:
+    """Recurrence constants in float64 (Python floats).
+
+    ``Pbar_m^m = start[m]``, ``Pbar_{m+1}^m = lift[m] z Pbar_m^m``, and for ``l >= m + 2``
+    ``Pbar_l^m = a[l, m] z Pbar_{l-1}^m - b[l, m] r^2 Pbar_{l-2}^m``, with ``Pbar_l^m`` normalised
+    so that ``sqrt(2) Pbar_l^m C_m`` (m > 0) and ``Pbar_l^0`` are orthonormal on the sphere.
+    """
+    start, lift, a, b = {}, {}, {}, {}
+    for m in range(l_max + 1):
+        # K_mm (2m-1)!!  with  K_lm = sqrt((2l+1)/(4 pi) (l-m)!/(l+m)!), built as a running product
+        # so that no factorial is formed: (2m-1)!!^2 / (2m)! = prod_{k=1..m} (2k-1)/(2k).
+        s = 1.0 / (4 * math.pi)
+        for k in range(1, m + 1):
+            s *= (2 * k - 1) / (2 * k)
+        start[m] = math.sqrt((2 * m + 1) * s)
+        lift[m] = math.sqrt(2 * m + 3)
+        for l in range(m + 2, l_max + 1):
+            a[l, m] = math.sqrt((4 * l * l - 1) / (l * l - m * m))
+            b[l, m] = math.sqrt(((l - 1) ** 2 - m * m) * (2 * l + 1) / ((2 * l - 3) * (l * l - m * m)))
+    return {"start": start, "lift": lift, "a": a, "b": b}
+
+
+def _check_l_max(l_max) -> int:
+    try:
+        value = None if isinstance(l_max, bool) else operator.index(l_max)
+    except TypeError:
+        value = None
+    if value is None or not 0 <= value <= L_MAX:
+        raise InputError(f"l_max should be an integer in [0, {L_MAX}], got {l_max!r} instead.")
+    return value
+
+
+def spherical_harmonics(l_max: int, vectors: torch.Tensor, normalize: bool = True) -> list[torch.Tensor]:
+    """Real spherical harmonics of degrees ``0..l_max`` of a batch of vectors.
+
+    Parameters
+    ----------
+    l_max : int
+        Highest degree, ``0 <= l_max <= L_MAX``.
+    vectors : (..., 3) float
+        Directions (any length). float32 or float64; the result has the same dtype and device.
+    normalize : bool
+        True (default): ``Y_l(v / |v|)``, the harmonics of the direction. A zero vector gives
+        the degree-0 constant ``1 / sqrt(4 pi)`` and zeros for ``l > 0``, with a finite (zero)
+        gradient. False: the solid harmonics ``|v|^l Y_l(v / |v|)``, homogeneous polynomials of
+        degree ``l`` in ``(x, y, z)``, smooth everywhere (zero at the origin for ``l > 0``).
+
+    Returns
+    -------
+    list of (..., 2l + 1) float
+        Entry ``l`` holds ``Y_{l,m}`` for ``m = -l..l`` at position ``m + l``.
+
+    Raises
+    ------
+    InputError
+        ``vectors`` is not a floating ``(..., 3)`` tensor, or ``l_max`` is out of range.
+    """
+    l_max = _check_l_max(l_max)
+    if not isinstance(vectors, torch.Tensor) or vectors.dim() < 1 or vectors.shape[-1] != 3:
+        raise InputError(f"vectors should have shape (..., 3), got {shape_of(vectors)} instead.")
+    if not vectors.is_floating_point():
+        raise InputError(f"vectors should be float32 or float64, got {vectors.dtype} instead.")
+
+    if normalize:
+        sq = (vectors * vectors).sum(-1, keepdim=True)
+        nonzero = sq > torch.finfo(vectors.dtype).tiny
+        # where() on both sides keeps the gradient finite for zero vectors (it is zero there).
+        norm = torch.sqrt(torch.where(nonzero, sq, torch.ones_like(sq)))
+        unit = torch.where(nonzero, vectors / norm, torch.zeros_like(vectors))
+        x, y, z = unit.unbind(-1)
+        # r^2 = 1 on the sphere and 0 for a zero vector: the solid harmonics of ``unit`` then give
+        # exactly Y_l(v / |v|), and zeros for l > 0 at the origin.
+        r2 = nonzero.squeeze(-1).to(vectors.dtype)
+    else:
+        x, y, z = vectors.unbind(-1)
+        r2 = x * x + y * y + z * z
+
+    co = _coefficients(l_max)
+    sqrt2 = math.sqrt(2.0)
+    # Pbar[l][m] for 0 <= m <= l, each of shape (...).
+    pbar: list[list[torch.Tensor]] = [[None] * (l + 1) for l in range(l_max + 1)]
+    # cos_m[m] + i sin_m[m] = (x + i y)^m.
+    cos_m = [torch.ones_like(x)]
+    sin_m = [torch.zeros_like(x)]
+    for m in range(1, l_max + 1):
+        cos_m.append(x * cos_m[m - 1] - y * sin_m[m - 1])
+        sin_m.append(x * sin_m[m - 1] + y * cos_m[m - 1])
+    for m in range(l_max + 1):
+        pbar[m][m] = torch.full_like(x, co["start"][m])
+        if m + 1 <= l_max:
+            pbar[m + 1][m] = co["lift"][m] * z * pbar[m][m]
+        for l in range(m + 2, l_max + 1):
+            pbar[l][m] = co["a"][l, m] * z * pbar[l - 1][m] - co["b"][l, m] * r2 * pbar[l - 2][m]
+
+    out = []
+    for l in range(l_max + 1):
+        parts = [sqrt2 * pbar[l][-m] * sin_m[-m] for m in range(-l, 0)]
+        parts.append(pbar[l][0])
+        parts += [sqrt2 * pbar[l][m] * cos_m[m] for m in range(1, l + 1)]
+        out.append(torch.stack(parts, -1))  # (..., 2l+1)
+    return out

@@ -1,0 +1,208 @@
+"""k-nearest-neighbour and radius graphs for padded batches, in O(B N k) memory.
+
+A graph is stored per receiver: ``index[b, i, :]`` lists the senders ``j`` of receiver ``i`` in
+cloud ``b``, nearest first, and ``valid[b, i, :]`` says which slots are real edges. Invalid slots
+point at the receiver itself, so gathers stay in range and need no masking to be safe.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import torch
+
+from shapes.errors import InputError
+from shapes.geometry._checks import check_count, shape_of
+
+__all__ = ["Neighbours", "knn_graph", "radius_graph", "gather_neighbours", "relative_vectors"]
+
+
+class Neighbours(NamedTuple):
+    """Edges of a neighbourhood graph, per receiver.
+
+    Attributes
+    ----------
+    index : (B, N, k) long
+        ``index[b, i, s]`` is the sender of slot ``s`` of receiver ``i``; slots are sorted by
+        distance, ties by sender index. Invalid slots hold ``i`` itself.
+    valid : (B, N, k) bool
+        True where the slot is a real edge (a real sender, within the radius if one was given,
+        and a real receiver).
+    """
+
+    index: torch.Tensor
+    valid: torch.Tensor
+
+
+def _check_points(points, mask) -> torch.Tensor:
+    if not isinstance(points, torch.Tensor) or points.dim() != 3 or points.shape[-1] != 3:
+        raise InputError(f"points should have shape (B, N, 3), got {shape_of(points)} instead.")
+    if not points.is_floating_point():
+        raise InputError(f"points should be float32 or float64, got {points.dtype} instead.")
+    if mask is None:
+        return torch.ones(points.shape[:2], dtype=torch.bool, device=points.device)
+    if not isinstance(mask, torch.Tensor) or tuple(mask.shape) != tuple(points.shape[:2]):
+        raise InputError(
+            f"mask should have shape (B, N) = {tuple(points.shape[:2])}, got {shape_of(mask)} instead."
+        )
+    return mask.to(device=points.device, dtype=torch.bool)
+
+
+def _sq_distances(receivers: torch.Tensor, senders: torch.Tensor) -> torch.Tensor:
+    """Squared distances ``(B, c, N)`` summed coordinate by coordinate.
+
+    Exact differences rather than ``|a|^2 + |b|^2 - 2 a.b``: symmetric, never negative, exactly 0
+    for duplicate points, and only two ``(B, c, N)`` buffers alive at once.
+    """
+    d = None
+    for axis in range(3):
+        diff = receivers[:, :, None, axis] - senders[:, None, :, axis]  # (B, c, N)
+        d = diff * diff if d is None else d.add_(diff * diff)
+    return d
+
+
+def _smallest_k(d: torch.Tensor, k: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """The ``k`` smallest entries of each row of ``d (..., N)``, ordered by (value, index).
+
+    ``topk`` is fast but leaves the order among equal values unspecified; rows whose selection
+    is ambiguous (a finite tie at the k-th value) are redone with a stable sort, and the chosen k
+    are then ordered by value with ties by index. Deterministic for any input.
+    """
+    vals, idx = torch.topk(d, k, dim=-1, largest=False, sorted=True)
+    kth = vals[..., -1:]
+    ambiguous = ((d == kth).sum(-1) > (vals == kth).sum(-1)) & torch.isfinite(kth.squeeze(-1))
+    if ambiguous.any():
+        rows = ambiguous.nonzero(as_tuple=True)
+        order = torch.sort(d[rows], dim=-1, stable=True).indices[..., :k]
+        idx[rows] = order
+        vals[rows] = torch.gather(d[rows], -1, order)
+    # Order the chosen k by (value, index): stable sort by index, then stable sort by value.
+    by_index = torch.sort(idx, dim=-1, stable=True)
+    idx = by_index.values
+    vals = torch.gather(vals, -1, by_index.indices)
+    by_value = torch.sort(vals, dim=-1, stable=True)
+    return by_value.values, torch.gather(idx, -1, by_value.indices)
+
+
+def _graph(points, k, mask, include_self, chunk_size, radius) -> Neighbours:
+    k = check_count(k, "k", 1)
+    chunk_size = check_count(chunk_size, "chunk_size", 1)
+    mask = _check_points(points, mask)
+    B, N, _ = points.shape
+    device = points.device
+    kk = min(k, N)
+    index = torch.empty((B, N, k), dtype=torch.long, device=device)
+    valid = torch.zeros((B, N, k), dtype=torch.bool, device=device)
+    arange = torch.arange(N, device=device)
+    index[:] = arange[None, :, None]
+    if N == 0:
+        return Neighbours(index, valid)
+    inf = torch.tensor(math.inf, dtype=points.dtype, device=device)
+    limit = None if radius is None else radius * radius
+    with torch.no_grad():
+        pts = points.detach()
+        not_sender = ~mask[:, None, :]  # (B, 1, N)
+        for start in range(0, N, chunk_size):
+            stop = min(start + chunk_size, N)
+            d = _sq_distances(pts[:, start:stop], pts)  # (B, c, N)
+            d = torch.where(not_sender, inf, d)
+            if not include_self:
+                rows = torch.arange(stop - start, device=device)
+                d[:, rows, rows + start] = inf
+            vals, idx = _smallest_k(d, kk)  # (B, c, kk)
+            ok = torch.isfinite(vals) & mask[:, start:stop, None]
+            if limit is not None:
+                ok &= vals <= limit
+            receiver = arange[start:stop][None, :, None]
+            index[:, start:stop, :kk] = torch.where(ok, idx, receiver)
+            valid[:, start:stop, :kk] = ok
+    return Neighbours(index, valid)
+
+
+def knn_graph(
+    points: torch.Tensor,
+    k: int,
+    mask: torch.Tensor | None = None,
+    include_self: bool = False,
+    chunk_size: int = 1024,
+) -> Neighbours:
+    """The ``k`` nearest senders of every point of a padded batch.
+
+    Parameters
+    ----------
+    points : (B, N, 3) float
+    k : int
+        Neighbours per receiver, ``>= 1``. May exceed the cloud size: the extra slots are invalid.
+    mask : (B, N) bool, optional
+        True for real points. Padded points are never senders, and padded receivers have no valid slot.
+    include_self : bool
+        Whether a point may be its own neighbour (at distance 0, so it comes first).
+    chunk_size : int
+        Receivers handled at once; the peak buffer is ``B x chunk_size x N`` distances.
+
+    Returns
+    -------
+    Neighbours
+        ``index (B, N, k) long`` and ``valid (B, N, k) bool``, nearest first, ties by sender index.
+    """
+    return _graph(points, k, mask, include_self, chunk_size, None)
+
+
+def radius_graph(
+    points: torch.Tensor,
+    radius: float,
+    k: int,
+    mask: torch.Tensor | None = None,
+    include_self: bool = False,
+    chunk_size: int = 1024,
+) -> Neighbours:
+    """The (at most) ``k`` nearest senders within distance ``radius`` (inclusive) of every point.
+
+    Same layout and rules as :func:`knn_graph`; senders farther than ``radius`` are invalid slots.
+    """
+    try:
+        radius = float(radius)
+    except (TypeError, ValueError):
+        radius = math.nan
+    if not radius > 0:  # also rejects NaN
+        raise InputError(f"radius should be a positive number, got {radius!r} instead.")
+    return _graph(points, k, mask, include_self, chunk_size, radius)
+
+
+def gather_neighbours(x: torch.Tensor, index: torch.Tensor) -> torch.Tensor:
+    """Per-edge copies of per-point features.
+
+    Parameters
+    ----------
+    x : (B, N, ...) tensor
+    index : (B, N, k) long
+        Sender indices, e.g. ``Neighbours.index``.
+
+    Returns
+    -------
+    (B, N, k, ...) tensor
+        ``out[b, i, s] = x[b, index[b, i, s]]``; differentiable in ``x``.
+    """
+    if not isinstance(x, torch.Tensor) or x.dim() < 2:
+        raise InputError(f"x should have shape (B, N, ...), got {shape_of(x)} instead.")
+    if not isinstance(index, torch.Tensor) or index.dim() != 3 or index.shape[0] != x.shape[0]:
+        raise InputError(
+            f"index should have shape (B, N, k) with B = {x.shape[0]}, got {shape_of(index)} instead."
+        )
+    B, N = x.shape[:2]
+    tail = x.shape[2:]
+    flat = x.reshape((B * N,) + tail)  # (B*N, ...)
+    offsets = (torch.arange(B, device=index.device) * N)[:, None, None]
+    return flat[index + offsets]  # (B, N', k, ...)
+
+
+def relative_vectors(points: torch.Tensor, index: torch.Tensor) -> torch.Tensor:
+    """Edge vectors ``sender - receiver``: ``points (B, N, 3)``, ``index (B, N, k) -> (B, N, k, 3)``."""
+    if not isinstance(points, torch.Tensor) or points.dim() != 3 or points.shape[-1] != 3:
+        raise InputError(f"points should have shape (B, N, 3), got {shape_of(points)} instead.")
+    if not isinstance(index, torch.Tensor) or index.dim() != 3 or tuple(index.shape[:2]) != tuple(points.shape[:2]):
+        raise InputError(
+            f"index should have shape (B, N, k) with (B, N) = {tuple(points.shape[:2])}, got {shape_of(index)} instead."
+        )
+    return gather_neighbours(points, index) - points[:, :, None, :]
