@@ -1,0 +1,117 @@
+"""The command line end to end on tiny settings, and its one-line answers to bad input."""
+
+import json
+from pathlib import Path
+
+import pytest
+import torch
+
+from shapes.cli import main
+
+REPO = Path(__file__).resolve().parent.parent
+DEMO = REPO / "demo_meshes"
+TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1"]
+
+
+def one_error_line(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: "), err
+    return err[0]
+
+
+def test_no_verb_lists_verbs(capsys):
+    assert main([]) == 0
+    out = capsys.readouterr().out
+    for verb in ("parts", "sample", "train", "eval", "demo"):
+        assert f"\n  {verb}" in out
+
+
+def test_verb_help(capsys):
+    assert main(["train", "--help"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("shapes train:") and "backbone: " in out and "distance" in out
+
+
+@pytest.mark.parametrize("argv,needle", [
+    (["train", "backbone=nosuch"], "unknown backbone 'nosuch'; choose one of: "),
+    (["train", "train.nosuch=1"], "train.nosuch"),
+    (["train", "--frobnicate"], "unknown flag --frobnicate"),
+    (["frob"], "unknown verb 'frob'"),
+    (["train", "backbone=distance,plain"], "add -m"),
+    (["eval", "-m"], "-m (sweeps) is for 'shapes train'"),
+])
+def test_bad_options_give_one_line(argv, needle, capsys):
+    assert main(argv) == 2
+    assert needle in one_error_line(capsys)
+
+
+def test_bad_values_give_one_line(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["eval", f"run={tmp_path / 'nowhere'}"]) == 2
+    assert "no checkpoint" in one_error_line(capsys)
+
+
+def test_one_class_folder_is_refused_and_leaves_nothing(tmp_path, monkeypatch, capsys):
+    import trimesh
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "cat" / "only").mkdir(parents=True)
+    trimesh.creation.box().export(tmp_path / "cat" / "only" / "a.stl")
+    assert main(["sample", f"meshes={tmp_path / 'cat'}", f"data={tmp_path / 'out'}"]) == 2
+    assert "class" in one_error_line(capsys)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["cat"]
+
+
+def test_empty_mesh_file_is_named_and_leaves_nothing(tmp_path, monkeypatch, capsys):
+    import trimesh
+
+    monkeypatch.chdir(tmp_path)
+    for cls in ("a", "b"):
+        (tmp_path / "cat" / cls).mkdir(parents=True)
+        for i in range(3):
+            trimesh.creation.box(extents=(1, 1 + i, 2)).export(tmp_path / "cat" / cls / f"{cls}{i}.stl")
+    (tmp_path / "cat" / "b" / "broken.stl").write_bytes(b"")
+    assert main(["sample", f"meshes={tmp_path / 'cat'}", f"data={tmp_path / 'out'}"]) == 2
+    assert "broken.stl" in one_error_line(capsys)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["cat"]
+
+
+@pytest.fixture(scope="module")
+def tiny_data(tmp_path_factory):
+    root = tmp_path_factory.mktemp("pipeline")
+    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", *TINY_SAMPLE]) == 0
+    return root / "data"
+
+
+def test_sample_train_eval(tiny_data, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    assert main(["train", f"data={tiny_data}", "backbone=distance", "backbone.hidden=8", "backbone.k=6",
+                 "train.epochs=1", "train.batch_size=32"]) == 0
+    (run,) = list((tmp_path / "runs" / "train").iterdir())
+    payload = torch.load(run / "checkpoint.pt", weights_only=True)
+    assert payload["meta"]["backbone"]["name"] == "distance"
+    assert (run / "config.yaml").is_file() and (run / "train_history.json").is_file()
+    assert main(["eval", "run=latest", "eval.repeats=1"]) == 0
+    metrics = json.loads((run / "metrics.json").read_text())
+    assert set(metrics["regimes"]) == {"aligned", "z", "so3", "mirror"}
+    # E3 backbone: its measured invariance must be float32 round-off
+    assert metrics["invariance"]["rotation"] < 1e-4 and metrics["invariance"]["reflection"] < 1e-4
+    assert (run / "report.md").is_file() and (run / "confusion_so3.png").is_file()
+    assert not list(run.glob(".*part*"))
+
+
+def test_multirun_sweeps_backbones(tiny_data, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    assert main(["train", "-m", f"data={tiny_data}", "backbone=distance,plain", "backbone.hidden=8",
+                 "train.epochs=1", "train.batch_size=64"]) == 0
+    found = sorted(p.parent.name for p in (tmp_path / "runs" / "sweep").glob("*/*/checkpoint.pt"))
+    assert found == ["0-distance", "1-plain"]
+
+
+def test_demo_on_a_tiny_setting(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo", f"meshes={DEMO}", f"demo.out={tmp_path / 'demo'}", "demo.points=96", "demo.epochs=1",
+                 "demo.copies={train: 1, val: 1, test: 1}"]) == 0
+    report = (tmp_path / "demo" / "report.md").read_text()
+    assert "| distance | E3 |" in report and "| plain | none |" in report
+    assert "demo report:" in capsys.readouterr().out
