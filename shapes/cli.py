@@ -23,6 +23,15 @@ VERBS: dict[str, str] = {
     "demo": "parts → sample → train two backbones → evaluate → one combined report",
 }
 
+# the config sections each verb reads, shown by `shapes <verb> --help`
+SECTIONS: dict[str, tuple[str, ...]] = {
+    "parts": ("parts", "seed"),
+    "sample": ("meshes", "data", "sample", "seed"),
+    "train": ("backbone", "data", "train", "seed"),
+    "eval": ("run", "eval", "seed"),
+    "demo": ("meshes", "demo", "seed"),
+}
+
 FLAGS = {"-m", "--multirun", "--traceback", "-h", "--help"}
 
 _verb: str = ""  # the verb the Hydra task below dispatches on
@@ -88,11 +97,14 @@ def _verb_help(verb: str, overrides: list[str]) -> str:
     from omegaconf import OmegaConf
 
     cfg = _compose(overrides)
-    shown = {k: v for k, v in OmegaConf.to_container(cfg, resolve=False).items()}
+    full = OmegaConf.to_container(cfg, resolve=False)
+    shown = {k: full[k] for k in SECTIONS[verb]}
     lines = [f"shapes {verb}: {VERBS[verb]}", "",
              f"usage: shapes {verb} [key=value ...]" + (" [-m]" if verb == "train" else "") + " [--traceback]", "",
              "choices:"]
     lines += [f"  {g}: {', '.join(opts)}" for g, opts in _groups().items()]
+    lines += ["  train.poses: aligned, z, so3", "  eval.poses: any of aligned, z, so3, mirror",
+              "  sample.mode: surface, scan, mixed"]
     lines += ["", "options (current values; override any as key=value):", OmegaConf.to_yaml(shown).rstrip()]
     return "\n".join(lines)
 
