@@ -1,0 +1,50 @@
+"""The data room: read meshes and scans, sample and scan them, write and load point-cloud shards.
+
+Meshes come in (STL, OBJ, PLY, OFF, GLB), clouds go out: :func:`build_dataset` turns a catalog
+folder into ``train/val/test.npz`` + ``meta.json``; :func:`load_split` and :class:`CloudDataset`
+serve them to torch. Every user mistake raises :class:`~shapes.errors.MeshError` or
+:class:`~shapes.errors.DataError` with a one-line message naming the file.
+"""
+
+from shapes.data._build import DEFAULT_COPIES, MODES, build_dataset
+from shapes.data._catalog import Catalog, Instance, read_catalog
+from shapes.data._load import CloudDataset, CloudSplit, collate_clouds, load_split, read_meta
+from shapes.data._read import (
+    MESH_SUFFIXES,
+    MIN_SCAN_POINTS,
+    SCAN_MESH_POINTS,
+    SCAN_SUFFIXES,
+    read_mesh,
+    read_scan,
+)
+from shapes.data._sample import farthest_point_subsample, normalise, sample_surface
+from shapes.data._scan import random_direction, ray_backend, scan_view
+from shapes.data._split import SPLITS, split_groups
+
+__all__ = [
+    "read_mesh",
+    "read_scan",
+    "MESH_SUFFIXES",
+    "SCAN_SUFFIXES",
+    "MIN_SCAN_POINTS",
+    "SCAN_MESH_POINTS",
+    "Catalog",
+    "Instance",
+    "read_catalog",
+    "sample_surface",
+    "farthest_point_subsample",
+    "normalise",
+    "scan_view",
+    "random_direction",
+    "ray_backend",
+    "SPLITS",
+    "split_groups",
+    "build_dataset",
+    "DEFAULT_COPIES",
+    "MODES",
+    "read_meta",
+    "load_split",
+    "CloudSplit",
+    "CloudDataset",
+    "collate_clouds",
+]
