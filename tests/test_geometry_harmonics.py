@@ -9,7 +9,7 @@ from numpy.polynomial.legendre import leggauss
 from scipy.special import sph_harm_y
 
 from shapes.errors import InputError
-from shapes.geometry import L_MAX, random_improper, random_rotations, spherical_harmonics
+from shapes.geometry import L_MAX, random_improper, random_rotations, spherical_harmonics, wigner_d
 from shapes.seeding import torch_generator
 
 
@@ -165,3 +165,16 @@ def test_float32_batched_shapes():
 def test_bad_input(l_max, vectors, message):
     with pytest.raises(InputError, match=message):
         spherical_harmonics(l_max, vectors)
+
+
+def test_equivariance_with_wigner_d():
+    v = torch.randn(100, 3, generator=torch_generator(6), dtype=torch.float64)
+    R = random_rotations(3, torch_generator(7), dtype=torch.float64)
+    for l in range(7):
+        D = wigner_d(l, R)
+        for i in range(3):
+            # definition (DESIGN.md): Y_l(R v) = D_l(R) Y_l(v)
+            moved = spherical_harmonics(l, v @ R[i].T)[l]
+            assert (moved - spherical_harmonics(l, v)[l] @ D[i].T).abs().max() < 1e-12
+            if l >= 1:  # and the harmonics do change: the check can fail
+                assert (moved - spherical_harmonics(l, v)[l]).abs().max() > 1e-2

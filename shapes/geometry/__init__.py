@@ -4,6 +4,7 @@ torch and numpy only. Conventions (rotations act on column vectors, harmonics' o
 are stated in each module's docstring and in DESIGN.md, and checked against scipy/sympy in tests.
 """
 
+from shapes.geometry._coupling import clebsch_gordan, complex_clebsch_gordan, real_basis_change
 from shapes.geometry._harmonics import L_MAX, harmonics_dim, spherical_harmonics
 from shapes.geometry._neighbours import (
     Neighbours,
@@ -27,6 +28,7 @@ from shapes.geometry._poses import (
     rotation_angle,
     rotations_about_z,
 )
+from shapes.geometry._wigner import wigner_d, wigner_d_list
 
 __all__ = [
     # poses
@@ -47,6 +49,12 @@ __all__ = [
     "L_MAX",
     "harmonics_dim",
     "spherical_harmonics",
+    # Wigner-D and coupling
+    "wigner_d",
+    "wigner_d_list",
+    "clebsch_gordan",
+    "complex_clebsch_gordan",
+    "real_basis_change",
     # neighbourhoods
     "Neighbours",
     "knn_graph",
