@@ -1,0 +1,504 @@
+"""Harmonic-filter attention: equivariant attention over neighbourhoods with spherical-harmonic filters.
+
+Features and parity
+-------------------
+Every point carries features of types ``(l, p)`` (degree ``l <= l_max``, parity ``p = +-1``), each a
+tensor ``(B, N, C_l, 2l + 1)`` with ``C_l = channels[l]`` (see ``_equivariant`` for the transformation
+rules). The input is one proper-scalar block embedded from invariant descriptors (distance to the
+centroid, mean neighbour distance, length of the mean neighbour offset); every other type is built
+by the filters. A filter path ``(l_in, p_in) -> (l_out, p_in (-1)^{l_f})`` goes through the harmonic
+``Y_{l_f}`` of the edge direction, so parity is tracked exactly:
+
+- ``parity: "full"`` keeps every path; pseudo-quantities (``1 x 1 -> 1`` gives a pseudovector, a
+  later hop a pseudo-scalar) get their own channels. The readout keeps pseudo-scalars as they are,
+  so a part and its mirror image give different features: the backbone is ``"SE3"``-invariant.
+- ``parity: "even"`` keeps only paths between proper types (``l_in + l_f + l_out`` even): no
+  pseudo-quantity exists, every invariant is reflection-invariant, the backbone is ``"E3"``.
+
+One layer (pre-norm, residual)
+------------------------------
+For receiver ``i`` and its neighbours ``j`` (kNN, or within ``radius`` capped at ``k``), with
+``r_ij = x_j - x_i``, ``d = |r_ij|`` and path basis
+``B_P(r_ij)[m_in, m_out] = sum_{m_f} C[l_in, l_f -> l_out][m_in, m_f, m_out] Y_{l_f, m_f}(r_ij / d)``::
+
+    k_ij[t_out] = sum_{P -> t_out} W^K_P ( R^K_P(d) * (B_P(r_ij)^T h_j[t_in]) )   (keys, per channel)
+    v_ij[t_out] = same with W^V_P and R^V_P                                       (values)
+    q_i[t]      = W^Q_t h_i[t]                                                     (queries)
+    a_ij^h      = softmax_j( sum_t <q_i[t], k_ij[t]>_head h / sqrt(d_head) )       (invariant logits)
+    out_i[t]    = W^O_t sum_j a_ij^{h(c)} v_ij[t]
+
+``R_P(d)`` is a per-path, per-input-channel radial weight from a small MLP on a Gaussian basis of
+``d``, times a cosine cutoff. ``W_P`` mixes channels. Then a gated point-wise feed-forward block.
+Readout: per point the scalars and pseudo-scalars, the norms of the ``l > 0`` channels and the
+proper-pseudo dot products; masked mean and max over the cloud.
+
+The fast path and its cost
+--------------------------
+Channel mixing is separated from the angular part and lifted off the edges. Per input type, one
+batched matmul turns the gathered sender features into ``Z_ij = h_j^T B(r_ij)`` for all its paths
+at once, with the per-edge basis ``B`` built ONCE per forward pass (one GEMM of the concatenated
+harmonics with a fixed coupling matrix) and shared by all layers. Keys are never formed: the query
+is pulled back through ``W^K`` on the receiver (``q~_i = W^K^T q_i``, per node), and the logit is
+``<q~_i, R^K * Z_ij>``. Values are aggregated per head before mixing
+(``A_i^h = sum_j a_ij^h R^V * Z_ij``) and mixed by ``W^V`` per node. With ``C_t`` channels of input
+type ``t``, ``W_l = sum_{pairs of l} (2 l_out + 1)`` basis columns, ``W^K_l`` the key columns and
+``H`` heads, the multiply-adds per edge per layer are::
+
+    angular   sum_t C_t (2 l_t + 1) W_{l_t}       radial MLP   hidden (num_radial + n_radial)
+    weighting sum_t C_t (W + W^K)                 logits       H sum_t C_t W^K_{l_t}
+    aggregate H sum_t C_t W_{l_t}
+
+and the channel mixing, ``sum_P C_out C_in (2 l_out + 1)`` for keys and values, runs per POINT,
+``k`` times less often. The dense reference (``reference=True``) builds every per-edge kernel
+``(C_out (2 l_out + 1), C_in (2 l_in + 1))`` explicitly (about ``2 C_out C_in (2 l_in + 1)(2 l_out + 1)``
+per path per edge, for keys and values). :meth:`HarmonicAttentionBackbone.flop_counts` gives both.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import NamedTuple
+
+import torch
+from torch import nn
+
+from shapes.backbones._base import Backbone, check_points, masked_centroid, masked_max, masked_mean
+from shapes.backbones._equivariant import (
+    PARITY_MODES,
+    EquivariantLinear,
+    EquivariantNorm,
+    GatedFeedForward,
+    angular_pairs,
+    coupling_matrix,
+    invariant_width,
+    layer_paths,
+    masked_softmax,
+    parse_channels,
+    point_invariants,
+    safe_norm,
+)
+from shapes.backbones._radial import GaussianBasis, cosine_cutoff
+from shapes.errors import ConfigError, InputError
+from shapes.geometry import (
+    clebsch_gordan,
+    gather_neighbours,
+    knn_graph,
+    radius_graph,
+    relative_vectors,
+    spherical_harmonics,
+)
+
+__all__ = ["HarmonicAttentionBackbone", "HarmonicAttentionConfig", "HarmonicAttentionLayer", "EdgeFrame"]
+
+
+@dataclass
+class HarmonicAttentionConfig:
+    l_max: int = 2  # degree 2 sees the orientation of flats, slots and bores; 3 costs ~2x per layer
+    channels: dict = field(default_factory=lambda: {0: 16, 1: 8, 2: 4})  # per degree AND parity; high degrees cost 2l+1 each
+    layers: int = 3  # a pseudo-scalar needs three hops from the scalar input (two via the readout's dot products)
+    heads: int = 2  # must divide every channel count; 2 heads keep per-head width >= 2 at degree 2
+    k: int = 16  # neighbours per point; 16 spans a few mm on a 1024-point part
+    radius: float | None = None  # None: k nearest neighbours; a number: neighbours within it (at most k)
+    num_radial: int = 16  # Gaussians resolving edge lengths in [0, cutoff]
+    radial_hidden: int = 32  # width of the radial MLP that turns the Gaussians into per-path weights
+    cutoff: float = 1.0  # in RMS radii of the normalised part (filters fade to 0 there); ~4x a 16-NN radius
+    parity: str = "full"  # "full": tell mirror twins apart (SE3); "even": reflection-invariant (E3)
+
+    def __post_init__(self):
+        self.l_max = _count(self.l_max, "l_max", 0)
+        if self.l_max > 3:
+            raise ConfigError(f"l_max should be in 0..3, got {self.l_max}.")
+        self.channels = parse_channels(self.channels, self.l_max)
+        self.layers = _count(self.layers, "layers", 1)
+        self.heads = _count(self.heads, "heads", 1)
+        self.k = _count(self.k, "k", 1)
+        self.num_radial = _count(self.num_radial, "num_radial", 1)
+        self.radial_hidden = _count(self.radial_hidden, "radial_hidden", 1)
+        if self.parity not in PARITY_MODES:
+            raise ConfigError(f"parity should be one of {list(PARITY_MODES)}, got {self.parity!r}.")
+        bad = {l: c for l, c in self.channels.items() if c % self.heads}
+        if bad:
+            raise ConfigError(f"heads = {self.heads} should divide every channel count, got channels {self.channels}.")
+        if self.parity == "full" and (self.l_max < 1 or self.layers < 2):
+            raise ConfigError(
+                "parity 'full' needs l_max >= 1 and layers >= 2 to build pseudo-scalars, "
+                f"got l_max = {self.l_max}, layers = {self.layers}; use parity 'even' for a smaller network."
+            )
+        self.cutoff = _positive(self.cutoff, "cutoff")
+        if self.radius is not None:
+            self.radius = _positive(self.radius, "radius")
+
+
+def _count(value, name: str, minimum: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+        raise ConfigError(f"{name} should be an integer >= {minimum}, got {value!r}.")
+    return value
+
+
+def _positive(value, name: str) -> float:
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = math.nan
+    if not number > 0 or math.isinf(number):
+        raise ConfigError(f"{name} should be a positive number, got {value!r}.")
+    return number
+
+
+class EdgeFrame(NamedTuple):
+    """Everything about the edges that all layers share, computed once per forward pass.
+
+    Attributes
+    ----------
+    index, valid : (B, N, k) long, bool
+        Senders of each receiver and which slots are real edges.
+    vectors, length : (B, N, k, 3), (B, N, k) float
+        Edge vectors ``x_j - x_i`` and their lengths (0 on invalid slots, which are self-loops).
+    rbf : (B, N, k, num_radial) float
+        Gaussian basis of the edge lengths.
+    envelope : (B, N, k) float
+        Cosine cutoff of the edge lengths, 0 on invalid slots.
+    harmonics : list of (B, N, k, 2l+1) float
+        ``Y_l`` of the edge directions, ``l = 0..2 l_max`` (the reference path uses these).
+    basis : dict l_in -> (B, N, k, 2 l_in + 1, W_l) float, or None
+        Angular basis of every path from degree ``l_in``, columns in :func:`angular_pairs` order.
+    """
+
+    index: torch.Tensor
+    valid: torch.Tensor
+    vectors: torch.Tensor
+    length: torch.Tensor
+    rbf: torch.Tensor
+    envelope: torch.Tensor
+    harmonics: list
+    basis: dict | None
+
+
+class _Group(NamedTuple):
+    """The paths of one input type and where they sit in the basis and radial columns."""
+
+    t_in: tuple
+    paths: list  # global path indices, in basis-column order
+    widths: list  # basis columns (2 l_out + 1) of each path
+    value_slice: slice  # radial outputs of the value paths: (n_paths, C_in) path-major
+    keys: list  # positions in `paths` of the key paths (output type is a query type)
+    key_ids: list  # index into the key-weight list of each key path
+    key_slice: slice | None  # radial outputs of the key paths: (n_keys, C_in) path-major
+    all_keys: bool  # every path of the group is a key path
+
+
+class HarmonicAttentionLayer(nn.Module):
+    """One equivariant attention block plus a gated feed-forward block, both residual.
+
+    Shape:
+        {t: (B, N, C[t], 2l+1)} for ``types_in`` -> {t: (B, N, C[t], 2l+1)} for ``types_out``
+    """
+
+    def __init__(self, types_in: dict, channels: dict, parity: str, heads: int, num_radial: int, radial_hidden: int):
+        super().__init__()
+        self.types_in = dict(types_in)
+        self.heads = heads
+        self.paths = layer_paths(types_in, list(channels), parity)
+        reached = {p.t_out for p in self.paths}
+        self.types_out = {t: channels[t[0]] for t in sorted(set(types_in) | reached, key=lambda t: (t[0], -t[1]))}
+        # Keys exist only for types the receiver has a query for (the first layer: scalars only).
+        self.key_paths = [i for i, p in enumerate(self.paths) if p.t_out in types_in]
+
+        fan_in = {t: 0 for t in self.types_out}
+        for p in self.paths:
+            fan_in[p.t_out] += types_in[p.t_in]
+        key_fan_in = {t: 0 for t in types_in}
+        for i in self.key_paths:
+            key_fan_in[self.paths[i].t_out] += types_in[self.paths[i].t_in]
+
+        def weight(p, fan):
+            return nn.Parameter(torch.randn(self.types_out[p.t_out], types_in[p.t_in]) / math.sqrt(fan[p.t_out]))
+
+        self.w_value = nn.ParameterList(weight(p, fan_in) for p in self.paths)  # (C_out, C_in) per path
+        self.w_key = nn.ParameterList(weight(self.paths[i], key_fan_in) for i in self.key_paths)
+
+        # Radial outputs: one weight per (path, input channel), values first, then keys.
+        self.groups: list[_Group] = []
+        value_at = 0
+        key_at = sum(types_in[p.t_in] for p in self.paths)
+        key_pos = {i: n for n, i in enumerate(self.key_paths)}
+        for g, (t_in, c_in) in enumerate(types_in.items()):
+            ids = [i for i, p in enumerate(self.paths) if p.t_in == t_in]
+            widths = [2 * self.paths[i].t_out[0] + 1 for i in ids]
+            keys = [n for n, i in enumerate(ids) if i in key_pos]
+            group = _Group(
+                t_in=t_in,
+                paths=ids,
+                widths=widths,
+                value_slice=slice(value_at, value_at + len(ids) * c_in),
+                keys=keys,
+                key_ids=[key_pos[ids[n]] for n in keys],
+                key_slice=slice(key_at, key_at + len(keys) * c_in) if keys else None,
+                all_keys=len(keys) == len(ids),
+            )
+            # Rows of the radial output layer that give, for every (channel, basis column), the
+            # weight of that column's path: the fast path multiplies them straight into Z.
+            path_of_col = [n for n, w in enumerate(widths) for _ in range(w)]
+            rows = [value_at + n * c_in + c for c in range(c_in) for n in path_of_col]
+            key_cols = [col for n in keys for col in range(sum(widths[:n]), sum(widths[: n + 1]))]
+            key_rows = [key_at + m * c_in + c for c in range(c_in) for m, n in enumerate(keys) for _ in range(widths[n])]
+            self.register_buffer(f"rows_{g}", torch.tensor(rows, dtype=torch.long), persistent=False)
+            self.register_buffer(f"key_rows_{g}", torch.tensor(key_rows, dtype=torch.long), persistent=False)
+            self.register_buffer(f"key_cols_{g}", torch.tensor(key_cols, dtype=torch.long), persistent=False)
+            value_at += len(ids) * c_in
+            key_at += len(keys) * c_in
+            self.groups.append(group)
+        self.n_radial = key_at
+        self.radial_hidden = nn.Sequential(nn.Linear(num_radial, radial_hidden), nn.SiLU())
+        self.radial_out = nn.Linear(radial_hidden, key_at)
+
+        self.norm = EquivariantNorm(types_in)
+        self.query = EquivariantLinear(types_in, types_in)
+        self.out = EquivariantLinear(self.types_out, self.types_out)
+        self.ff_norm = EquivariantNorm(self.types_out)
+        self.ff = GatedFeedForward(self.types_out)
+        d_head = sum(c // heads * (2 * l + 1) for (l, _), c in types_in.items())
+        self.scale = 1.0 / math.sqrt(d_head)
+
+    def forward(self, h: dict, edges: EdgeFrame, reference: bool = False) -> dict:
+        x = self.norm(h)
+        q = self.query(x)
+        hidden = self.radial_hidden(edges.rbf)  # (B, N, k, radial_hidden)
+        attend = self._attend_reference if reference else self._attend_fast
+        msg = self.out(attend(x, q, hidden, edges))
+        h = {t: msg[t] + h[t] if t in h else msg[t] for t in self.types_out}
+        update = self.ff(self.ff_norm(h))
+        return {t: h[t] + update[t] for t in self.types_out}
+
+    # -- fast path ---------------------------------------------------------------------------
+
+    def _radial_columns(self, hidden: torch.Tensor, rows: torch.Tensor) -> torch.Tensor:
+        """Radial weights already spread over basis columns: ``(B, N, k, C*W)``, one GEMM."""
+        return nn.functional.linear(hidden, self.radial_out.weight[rows], self.radial_out.bias[rows])
+
+    def _attend_fast(self, x: dict, q: dict, hidden: torch.Tensor, edges: EdgeFrame) -> dict:
+        # The cutoff envelope is a per-edge scalar and everything is linear in the radial weights,
+        # so it multiplies the logits and the attention weights instead of every radial weight.
+        H = self.heads
+        logits = 0.0
+        weighted = []
+        for g, group in enumerate(self.groups):
+            l_in = group.t_in[0]
+            xj = gather_neighbours(x[group.t_in], edges.index)  # (B, N, k, C, 2l+1)
+            basis = edges.basis[l_in]  # (B, N, k, 2l+1, W)
+            z = xj * basis if l_in == 0 else xj @ basis  # (B, N, k, C, W)
+            weighted.append(z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"rows_{g}")))  # (B, N, k, C*W)
+            if not group.keys:
+                continue
+            if not group.all_keys:  # basis columns of the key paths only (the basis needs no gradient)
+                basis = basis.index_select(-1, getattr(self, f"key_cols_{g}"))  # (B, N, k, 2l+1, Wk)
+                z = xj * basis if l_in == 0 else xj @ basis  # (B, N, k, C, Wk)
+            key = z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"key_rows_{g}"))  # (B, N, k, C*Wk)
+            # Pull each query back through its key mixing, on the receiver: q~ = W^K^T q per head.
+            pulled = []
+            for n, key_id in zip(group.keys, group.key_ids):
+                t_out = self.paths[group.paths[n]].t_out
+                c_out = self.types_in[t_out]
+                qh = q[t_out].unflatten(2, (H, c_out // H))  # (B, N, H, C_out/H, 2l_out+1)
+                w = self.w_key[key_id].unflatten(0, (H, c_out // H))  # (H, C_out/H, C_in)
+                pulled.append(torch.einsum("bnhom,hoc->bnhcm", qh, w))  # (B, N, H, C_in, 2l_out+1)
+            pulled = torch.cat(pulled, -1).flatten(-2)  # (B, N, H, C*Wk)
+            logits = logits + key @ pulled.transpose(-1, -2)  # (B, N, k, H)
+        logits = logits * (edges.envelope[..., None] * self.scale)
+        alpha = masked_softmax(logits, edges.valid[..., None], dim=2) * edges.envelope[..., None]  # (B, N, k, H)
+        out = {}
+        for group, u in zip(self.groups, weighted):
+            c_in = self.types_in[group.t_in]
+            agg = (alpha.transpose(-1, -2) @ u).unflatten(-1, (c_in, -1))  # (B, N, H, C, W)
+            for i, part in zip(group.paths, agg.split(group.widths, -1)):
+                t_out = self.paths[i].t_out
+                c_out = self.types_out[t_out]
+                w = self.w_value[i].unflatten(0, (H, c_out // H))  # (H, C_out/H, C_in)
+                o = torch.einsum("bnhcm,hoc->bnhom", part, w).flatten(2, 3)  # (B, N, C_out, 2l_out+1)
+                out[t_out] = out[t_out] + o if t_out in out else o
+        return out
+
+    # -- reference ---------------------------------------------------------------------------
+
+    def _path_radial(self, radial: torch.Tensor, path_id: int, key: bool) -> torch.Tensor:
+        """Radial weights ``(B, N, k, C_in)`` of one path, read from the shared radial output."""
+        for group in self.groups:
+            if path_id in group.paths:
+                n = group.paths.index(path_id)
+                c_in = self.types_in[group.t_in]
+                if key:
+                    n, start = group.keys.index(n), group.key_slice.start
+                else:
+                    start = group.value_slice.start
+                return radial[..., start + n * c_in : start + (n + 1) * c_in]
+        raise AssertionError(f"path {path_id} is in no group")
+
+    def _attend_reference(self, x: dict, q: dict, hidden: torch.Tensor, edges: EdgeFrame) -> dict:
+        """Dense per-edge kernels, one path at a time: slow, and obviously equivariant."""
+        B, N, K = edges.index.shape
+        radial = self.radial_out(hidden) * edges.envelope[..., None]  # (B, N, k, n_radial)
+        H = self.heads
+        keys, values = {}, {}
+        for i, p in enumerate(self.paths):
+            (l_in, _), (l_out, _) = p.t_in, p.t_out
+            c_in, c_out = self.types_in[p.t_in], self.types_out[p.t_out]
+            cg = clebsch_gordan(l_in, p.l_f, l_out, dtype=radial.dtype, device=radial.device)
+            basis = torch.einsum("bnkf,ifo->bnkio", edges.harmonics[p.l_f], cg)  # (B, N, k, 2l_in+1, 2l_out+1)
+            xj = gather_neighbours(x[p.t_in], edges.index).flatten(-2)  # (B, N, k, C_in*(2l_in+1))
+            targets = [(values, self.w_value[i], False)]
+            if i in self.key_paths:
+                targets.append((keys, self.w_key[self.key_paths.index(i)], True))
+            for store, w, is_key in targets:
+                r = self._path_radial(radial, i, is_key)  # (B, N, k, C_in)
+                kernel = torch.einsum("oc,bnkc,bnkij->bnkojci", w, r, basis)  # (B, N, k, C_out, 2l_out+1, C_in, 2l_in+1)
+                kernel = kernel.reshape(B, N, K, c_out * (2 * l_out + 1), c_in * (2 * l_in + 1))
+                y = (kernel @ xj.unsqueeze(-1)).squeeze(-1).unflatten(-1, (c_out, 2 * l_out + 1))  # (B, N, k, C_out, 2l_out+1)
+                store[p.t_out] = store[p.t_out] + y if p.t_out in store else y
+        logits = 0.0
+        for t, k_t in keys.items():
+            c = self.types_in[t]
+            qh = q[t].unflatten(2, (H, c // H)).unsqueeze(2)  # (B, N, 1, H, C/H, 2l+1)
+            logits = logits + (qh * k_t.unflatten(3, (H, c // H))).sum((-1, -2))  # (B, N, k, H)
+        valid = edges.valid[..., None].expand(B, N, K, H)
+        any_valid = valid.any(2, keepdim=True)
+        alpha = torch.softmax((logits * self.scale).masked_fill(~(valid | ~any_valid), -math.inf), dim=2)
+        alpha = alpha * any_valid  # an all-invalid neighbourhood sends nothing
+        out = {}
+        for t, v in values.items():
+            c = self.types_out[t]
+            out[t] = torch.einsum("bnkh,bnkhom->bnhom", alpha, v.unflatten(3, (H, c // H))).flatten(2, 3)  # (B, N, C, 2l+1)
+        return out
+
+    # -- cost --------------------------------------------------------------------------------
+
+    def flop_counts(self, num_radial: int, radial_hidden: int) -> dict:
+        """Analytic multiply-add counts: per edge of the fast path, per point, per edge of the reference."""
+        H = self.heads
+        angular = weighting = logits = aggregate = 0
+        for group in self.groups:
+            l_in = group.t_in[0]
+            c_in = self.types_in[group.t_in]
+            width = sum(group.widths)
+            key_width = sum(group.widths[n] for n in group.keys)
+            angular += c_in * (2 * l_in + 1) * width
+            # the radial GEMM writes its weights already spread over the basis columns
+            weighting += (radial_hidden + 1) * c_in * (width + key_width)
+            logits += H * c_in * key_width
+            aggregate += H * c_in * width
+        radial = radial_hidden * num_radial
+        mixing = 0
+        reference = radial + radial_hidden * self.n_radial
+        for i, p in enumerate(self.paths):
+            (l_in, _), (l_out, _) = p.t_in, p.t_out
+            dense = self.types_out[p.t_out] * (2 * l_out + 1) * self.types_in[p.t_in] * (2 * l_in + 1)
+            copies = 2 if i in self.key_paths else 1
+            mixing += copies * self.types_out[p.t_out] * self.types_in[p.t_in] * (2 * l_out + 1)
+            # build the kernel (two products per entry) and apply it, plus the path's own basis
+            reference += copies * 3 * dense + (2 * p.l_f + 1) * (2 * l_in + 1) * (2 * l_out + 1)
+        return {
+            "edge": {"angular": angular, "radial": radial + weighting, "logits": logits, "aggregate": aggregate},
+            "point": {"mixing": mixing},
+            "reference_edge": reference,
+        }
+
+
+class HarmonicAttentionBackbone(Backbone):
+    """Equivariant attention with spherical-harmonic filters; invariant readout (see module docstring).
+
+    Shape:
+        points (B, N, 3), mask (B, N) -> features (B, out_features)
+    """
+
+    name = "harmonic_attention"
+    Config = HarmonicAttentionConfig
+
+    def __init__(self, **kwargs):
+        super().__init__(**kwargs)
+        c = self.config
+        self.degrees = list(c.channels)
+        self.pairs = {l: angular_pairs(l, self.degrees, c.parity) for l in self.degrees}
+        self.l_f_max = max(l_f for pairs in self.pairs.values() for l_f, _ in pairs)
+        c0 = c.channels[0]
+        # Invariant descriptors -> proper scalars: the only input; filters build everything else.
+        self.embed = nn.Sequential(nn.Linear(3, c0), nn.SiLU(), nn.Linear(c0, c0))
+        self.rbf = GaussianBasis(c.num_radial, c.cutoff)
+        types = {(0, 1): c0}
+        layers = []
+        for _ in range(c.layers):
+            layers.append(HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden))
+            types = layers[-1].types_out
+        self.layers = nn.ModuleList(layers)
+        self.types_out = types
+        self.final_norm = EquivariantNorm(types)
+        self._coupling: dict = {}  # (l_in, dtype, device) -> coupling matrix, built from float64 tables
+        self.symmetry = "SE3" if c.parity == "full" else "E3"
+        self.out_features = 2 * invariant_width(types)
+
+    def _coupling_matrix(self, l_in: int, dtype, device) -> torch.Tensor:
+        key = (l_in, dtype, str(device))
+        if key not in self._coupling:
+            self._coupling[key] = coupling_matrix(l_in, self.pairs[l_in], self.l_f_max, clebsch_gordan, dtype, device)
+        return self._coupling[key]
+
+    def edge_frame(self, points: torch.Tensor, mask: torch.Tensor, reference: bool = False) -> EdgeFrame:
+        """Neighbourhoods and the per-edge radial and angular bases, shared by every layer."""
+        c = self.config
+        if c.radius is None:
+            nb = knn_graph(points, c.k, mask)
+        else:
+            nb = radius_graph(points, c.radius, c.k, mask)
+        r = relative_vectors(points, nb.index)  # (B, N, k, 3), sender - receiver
+        dist = safe_norm(r) * nb.valid  # (B, N, k); invalid slots are self-loops of length 0
+        harmonics = spherical_harmonics(self.l_f_max, r)  # list of (B, N, k, 2l+1)
+        envelope = cosine_cutoff(dist, c.cutoff) * nb.valid
+        basis = None
+        if not reference:
+            y = torch.cat(harmonics, -1)  # (B, N, k, (l_f_max+1)^2)
+            basis = {
+                l: (y @ self._coupling_matrix(l, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
+                for l in self.degrees
+            }
+        return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis)
+
+    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> list:
+        """Per-layer feature dicts ``{(l, p): (B, N, C_l, 2l+1)}``, one per layer (equivariant)."""
+        h, _ = self._run(points, mask, reference)
+        return h
+
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> torch.Tensor:
+        per_layer, mask = self._run(points, mask, reference)
+        inv = point_invariants(self.final_norm(per_layer[-1]), self.types_out)  # (B, N, F)
+        return torch.cat([masked_mean(inv, mask), masked_max(inv, mask)], -1)  # (B, 2F)
+
+    def _run(self, points, mask, reference):
+        mask = check_points(points, mask)
+        c = self.config
+        if c.radius is None:
+            smallest = int(mask.sum(1).min()) if mask.numel() else 0
+            if smallest <= c.k:
+                raise InputError(f"k = {c.k} neighbours needs clouds of at least {c.k + 1} points, got {smallest}.")
+        # Padding never reaches a real point (it is no one's neighbour); zeroing it keeps junk finite.
+        points = points.masked_fill(~mask[..., None], 0.0)
+        points = torch.where(mask[..., None], points - masked_centroid(points, mask), points)
+        edges = self.edge_frame(points, mask, reference)
+        h = {(0, 1): self.embed(self._descriptors(points, edges)).unsqueeze(-1)}  # (B, N, C0, 1)
+        per_layer = []
+        for layer in self.layers:
+            h = layer(h, edges, reference)
+            per_layer.append(h)
+        return per_layer, mask
+
+    @staticmethod
+    def _descriptors(points: torch.Tensor, edges: EdgeFrame) -> torch.Tensor:
+        """Invariant per-point inputs ``(B, N, 3)``: centroid distance, mean edge length, |mean offset|."""
+        valid = edges.valid.to(points.dtype)
+        count = valid.sum(-1).clamp_min(1.0)  # (B, N)
+        mean_length = edges.length.sum(-1) / count  # invalid slots have length 0
+        mean_offset = safe_norm((edges.vectors * valid[..., None]).sum(-2) / count[..., None])
+        return torch.stack([safe_norm(points), mean_length, mean_offset], -1)
+
+    def flop_counts(self) -> list:
+        """Analytic multiply-add counts per layer (see :meth:`HarmonicAttentionLayer.flop_counts`)."""
+        c = self.config
+        return [layer.flop_counts(c.num_radial, c.radial_hidden) for layer in self.layers]
