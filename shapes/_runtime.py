@@ -32,11 +32,11 @@ def set_threads(threads: int | None) -> None:
 def versions() -> dict[str, str]:
     import shapes
 
-    out = {"shapes": shapes.__version__, "python": platform.python_version(), "torch": torch.__version__,
+    out = {"shapes": shapes.__version__, "python": platform.python_version(), "torch": str(torch.__version__),
            "numpy": np.__version__}
     for name in ("trimesh", "sklearn", "scipy"):
         try:
-            out[name] = __import__(name).__version__
+            out[name] = str(__import__(name).__version__)
         except ImportError:  # optional at this point of the pipeline
             pass
     return out

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import os
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -52,7 +53,7 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
         backbone = build_backbone(meta["backbone"]["name"], **meta["backbone"]["options"])
         model = Classifier(backbone, len(meta["classes"]), **meta["head"])
         model.load_state_dict(payload["state_dict"])
-    except (KeyError, RuntimeError, EOFError, TypeError) as exc:
+    except (KeyError, RuntimeError, EOFError, TypeError, pickle.UnpicklingError) as exc:
         raise DataError(f"checkpoint '{path}' cannot be read: {str(exc).splitlines()[0]}") from exc
     return model.to(device).eval(), meta
 

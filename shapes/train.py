@@ -152,7 +152,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             nn.utils.clip_grad_norm_(model.parameters(), 5.0)
             opt.step()
             sched.step()
-            losses.append(float(loss))
+            losses.append(float(loss.detach()))
         val_acc = _accuracy(model, x_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
         row = {"epoch": epoch, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
                "seconds": time.perf_counter() - t0, "lr": sched.get_last_lr()[0]}

@@ -35,19 +35,20 @@ class Interaction(nn.Module):
     """One continuous-filter convolution block with a residual update.
 
     h_i ← h_i + MLP( mean_j W(d_ij) ⊙ Linear(h_j) ), W from a filter-generating network on the
-    Gaussian expansion of d_ij, scaled by a smooth cutoff.
+    Gaussian expansion of d_ij, scaled by a smooth cutoff. The first layer of the filter network
+    is shared by all blocks (``radial`` below), which halves the per-edge cost.
     """
 
-    def __init__(self, hidden: int, num_radial: int):
+    def __init__(self, hidden: int):
         super().__init__()
-        self.filter = nn.Sequential(nn.Linear(num_radial, hidden), nn.SiLU(), nn.Linear(hidden, hidden))
+        self.filter = nn.Linear(hidden, hidden)
         self.into = nn.Linear(hidden, hidden, bias=False)
         self.out = nn.Sequential(nn.Linear(hidden, hidden), nn.SiLU(), nn.Linear(hidden, hidden))
         self.norm = nn.LayerNorm(hidden)
 
-    def forward(self, h, index, rbf, weight):
-        # h (B, N, H); index (B, N, k); rbf (B, N, k, R); weight (B, N, k) cutoff × valid
-        w = self.filter(rbf) * weight.unsqueeze(-1)  # (B, N, k, H)
+    def forward(self, h, index, radial, weight):
+        # h (B, N, H); index (B, N, k); radial (B, N, k, H) shared filter features; weight (B, N, k) cutoff × valid
+        w = self.filter(radial) * weight.unsqueeze(-1)  # (B, N, k, H)
         msg = gather_neighbours(self.into(h), index) * w  # (B, N, k, H)
         agg = msg.sum(2) / weight.sum(2, keepdim=True).clamp_min(1e-6)  # (B, N, H)
         return self.norm(h + self.out(agg))
@@ -74,7 +75,8 @@ class DistanceBackbone(Backbone):
         self.rbf = GaussianBasis(c.num_radial, c.cutoff)
         self.centroid_rbf = GaussianBasis(c.centroid_radial, 3.0)  # normalised parts lie within ~3 RMS radii
         self.embed = nn.Sequential(nn.Linear(c.centroid_radial, c.hidden), nn.SiLU(), nn.Linear(c.hidden, c.hidden))
-        self.blocks = nn.ModuleList(Interaction(c.hidden, c.num_radial) for _ in range(c.layers))
+        self.radial = nn.Sequential(nn.Linear(c.num_radial, c.hidden), nn.SiLU())
+        self.blocks = nn.ModuleList(Interaction(c.hidden) for _ in range(c.layers))
         self.symmetry = "E3"
         self.out_features = 2 * c.hidden
 
@@ -88,9 +90,9 @@ class DistanceBackbone(Backbone):
         rel = gather_neighbours(points, nb.index) - points.unsqueeze(2)  # (B, N, k, 3)
         d = rel.square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N, k)
         weight = cosine_cutoff(d, c.cutoff) * nb.valid.to(points.dtype)  # (B, N, k)
-        rbf = self.rbf(d)  # (B, N, k, R)
+        radial = self.radial(self.rbf(d))  # (B, N, k, H), computed once for all blocks
         r0 = (points - masked_centroid(points, mask)).square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N)
         h = self.embed(self.centroid_rbf(r0))  # (B, N, H)
         for block in self.blocks:
-            h = block(h, nb.index, rbf, weight)
+            h = block(h, nb.index, radial, weight)
         return torch.cat([masked_max(h, mask), masked_mean(h, mask)], dim=-1)  # (B, 2H)
