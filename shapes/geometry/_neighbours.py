@@ -18,6 +18,10 @@ from shapes.geometry._checks import check_count, shape_of
 __all__ = ["Neighbours", "knn_graph", "radius_graph", "gather_neighbours", "relative_vectors"]
 
 
+# Distances held per block (elements); see _graph.
+_BLOCK_ELEMENTS = 1 << 20
+
+
 class Neighbours(NamedTuple):
     """Edges of a neighbourhood graph, per receiver.
 
@@ -55,10 +59,11 @@ def _sq_distances(receivers: torch.Tensor, senders: torch.Tensor) -> torch.Tenso
     Exact differences rather than ``|a|^2 + |b|^2 - 2 a.b``: symmetric, never negative, exactly 0
     for duplicate points, and only two ``(B, c, N)`` buffers alive at once.
     """
-    d = None
-    for axis in range(3):
-        diff = receivers[:, :, None, axis] - senders[:, None, :, axis]  # (B, c, N)
-        d = diff * diff if d is None else d.add_(diff * diff)
+    d = torch.sub(receivers[:, :, None, 0], senders[:, None, :, 0]).square_()  # (B, c, N)
+    tmp = torch.empty_like(d)
+    for axis in (1, 2):
+        torch.sub(receivers[:, :, None, axis], senders[:, None, :, axis], out=tmp)
+        d.addcmul_(tmp, tmp)
     return d
 
 
@@ -77,7 +82,11 @@ def _smallest_k(d: torch.Tensor, k: int) -> tuple[torch.Tensor, torch.Tensor]:
         order = torch.sort(d[rows], dim=-1, stable=True).indices[..., :k]
         idx[rows] = order
         vals[rows] = torch.gather(d[rows], -1, order)
-    # Order the chosen k by (value, index): stable sort by index, then stable sort by value.
+    # Order equal values by index: stable sort by index, then stable sort by value. Only needed
+    # when a finite value repeats (infinite slots are dropped by the caller), so usually skipped.
+    repeats = (vals[..., 1:] == vals[..., :-1]) & torch.isfinite(vals[..., 1:])
+    if not repeats.any():
+        return vals, idx
     by_index = torch.sort(idx, dim=-1, stable=True)
     idx = by_index.values
     vals = torch.gather(vals, -1, by_index.indices)
@@ -98,18 +107,22 @@ def _graph(points, k, mask, include_self, chunk_size, radius) -> Neighbours:
     index[:] = arange[None, :, None]
     if N == 0:
         return Neighbours(index, valid)
-    inf = torch.tensor(math.inf, dtype=points.dtype, device=device)
     limit = None if radius is None else radius * radius
+    # Receivers per block: at most chunk_size, and few enough that a block of B x c x N distances
+    # stays around 4 MB in float32 -- cache-sized blocks make the passes below several times faster.
+    rows_per_block = max(1, min(chunk_size, _BLOCK_ELEMENTS // max(1, B * N)))
+    all_real = bool(mask.all())
     with torch.no_grad():
         pts = points.detach()
         not_sender = ~mask[:, None, :]  # (B, 1, N)
-        for start in range(0, N, chunk_size):
-            stop = min(start + chunk_size, N)
+        for start in range(0, N, rows_per_block):
+            stop = min(start + rows_per_block, N)
             d = _sq_distances(pts[:, start:stop], pts)  # (B, c, N)
-            d = torch.where(not_sender, inf, d)
+            if not all_real:
+                d.masked_fill_(not_sender, math.inf)
             if not include_self:
                 rows = torch.arange(stop - start, device=device)
-                d[:, rows, rows + start] = inf
+                d[:, rows, rows + start] = math.inf
             vals, idx = _smallest_k(d, kk)  # (B, c, kk)
             ok = torch.isfinite(vals) & mask[:, start:stop, None]
             if limit is not None:
@@ -139,7 +152,8 @@ def knn_graph(
     include_self : bool
         Whether a point may be its own neighbour (at distance 0, so it comes first).
     chunk_size : int
-        Receivers handled at once; the peak buffer is ``B x chunk_size x N`` distances.
+        Most receivers handled at once; the peak buffer is at most ``B x chunk_size x N``
+        distances (blocks are made smaller still, about 1M distances, for cache efficiency).
 
     Returns
     -------
