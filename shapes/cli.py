@@ -168,6 +168,8 @@ def _run_train(cfg) -> None:
     settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
                              extra={"config": OmegaConf.to_container(cfg, resolve=True)})
     ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+    if int(os.environ.get("RANK", "0")) != 0:
+        return  # under torchrun only the first process writes and reports
     write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))
     print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
 

@@ -120,7 +120,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     steps_per_epoch = math.ceil(len(x_train) / (s.batch_size * world))
     total = steps_per_epoch * s.epochs
     sched = torch.optim.lr_scheduler.LambdaLR(opt, _cosine_with_warmup(total, max(1, int(s.warmup * total))))
-    gen = torch_generator(s.seed + 1000 * rank)
+    gen = torch_generator(s.seed)  # the same on every rank: see the permutation below
     loss_fn = nn.CrossEntropyLoss()
 
     checkpoint_meta = {
@@ -138,7 +138,10 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     ckpt = run_dir / CHECKPOINT
     for epoch in range(1, s.epochs + 1):
         net.train()
-        order = torch.randperm(len(x_train), generator=gen).to(device)[rank::world]
+        order = torch.randperm(len(x_train), generator=gen)
+        # every rank takes the same permutation (same seed) and an equal share, so DDP's
+        # gradient all-reduce sees the same number of steps on each rank
+        order = order[: len(order) // world * world][rank::world].to(device)
         losses, t0 = [], time.perf_counter()
         for start in progress(range(0, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
             idx = order[start:start + s.batch_size]
