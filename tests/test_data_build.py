@@ -1,0 +1,212 @@
+"""Building point-cloud shards from a catalog: splits by group, formats, determinism, atomicity."""
+
+import json
+
+import numpy as np
+import pytest
+import trimesh
+
+from shapes.data import build_dataset, load_split, read_catalog, read_meta, split_groups
+from shapes.errors import ConfigError, DataError, MeshError
+
+SMALL = dict(points=48, copies={"train": 2, "val": 1, "test": 1}, oversample=2)
+
+
+def chiral_mesh(size):
+    # a tetrahedron with three different edge lengths at one corner has no mirror symmetry
+    v = np.array([[0, 0, 0], [1, 0, 0], [0, 2, 0], [0, 0, 3]], dtype=float) * size
+    return trimesh.Trimesh(v, [[0, 2, 1], [0, 1, 3], [0, 3, 2], [1, 2, 3]], process=False)
+
+
+def make_catalog(root, groups=("g1", "g2", "g3", "g4")):
+    """Four classes; 'hand_r'/'hand_l' are mirror twins and share group names."""
+    classes = []
+    for name, twin in (("hand_r", "hand_l"), ("hand_l", "hand_r"), ("block", "block"), ("rod", "rod")):
+        instances = []
+        for k, g in enumerate(groups):
+            size = 1.0 + k
+            if name.startswith("hand"):
+                mesh = chiral_mesh(size)
+                if name == "hand_l":
+                    mesh.apply_transform(np.diag([-1.0, 1, 1, 1]))
+            elif name == "block":
+                mesh = trimesh.creation.box(extents=(size, 2 * size, 0.5 * size))
+            else:
+                mesh = trimesh.creation.cylinder(radius=0.3 * size, height=4 * size, sections=12)
+            rel = f"{name}/{name}_{g}.stl"
+            (root / name).mkdir(parents=True, exist_ok=True)
+            mesh.export(root / rel)
+            instances.append({"file": rel, "group": g, "params": {"size": size}})
+        classes.append({"name": name, "twin": twin, "handed": twin != name, "instances": instances})
+    (root / "catalog.json").write_text(json.dumps({"format": 1, "title": "t", "units": "mm", "classes": classes}))
+    return root
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    base = tmp_path_factory.mktemp("build")
+    make_catalog(base / "cat")
+    out = build_dataset(base / "cat", base / "ds", seed=3, **SMALL)
+    return base, out
+
+
+def test_shards_shapes_and_dtypes(built):
+    _, out = built
+    meta = read_meta(out)
+    for split, copies in SMALL["copies"].items():
+        with np.load(out / f"{split}.npz") as shard:
+            m = shard["labels"].shape[0]
+            assert m == meta["counts"][split]
+            assert shard["points"].shape == (m, 48, 3) and shard["points"].dtype == np.float32
+            assert shard["normals"].shape == (m, 48, 3) and shard["normals"].dtype == np.float32
+            assert shard["labels"].dtype == np.int64 and shard["instance"].dtype == np.int32
+            assert shard["scale"].shape == (m,) and shard["scale"].dtype == np.float32
+            n_inst = sum(i["split"] == split for i in meta["instances"])
+            assert m == n_inst * copies
+            # each cloud is normalised: centroid 0, unit RMS radius (float32 storage)
+            pts = shard["points"].astype(np.float64)
+            np.testing.assert_allclose(pts.mean(axis=1), 0.0, atol=1e-5)
+            np.testing.assert_allclose(np.sqrt((pts**2).sum(-1).mean(-1)), 1.0, atol=1e-5)
+            np.testing.assert_allclose(np.linalg.norm(shard["normals"], axis=-1), 1.0, atol=1e-5)
+
+
+def test_splits_by_group_with_twins_together(built):
+    _, out = built
+    meta = read_meta(out)
+    split_of_group = {}
+    for inst in meta["instances"]:
+        # one group is in one split only, across all classes (so twins share it)
+        assert split_of_group.setdefault(inst["group"], inst["split"]) == inst["split"]
+    for cls in meta["classes"]:
+        assert {i["split"] for i in meta["instances"] if i["class"] == cls} == {"train", "val", "test"}
+    for split in ("train", "val", "test"):
+        data = load_split(out, split)
+        groups = {meta["instances"][i]["group"] for i in data.instance}
+        assert all(split_of_group[g] == split for g in groups)
+        # labels agree with the instances they came from
+        assert all(meta["classes"][lab] == meta["instances"][i]["class"] for lab, i in zip(data.labels, data.instance))
+
+
+def test_meta_content(built):
+    base, out = built
+    meta = read_meta(out)
+    assert meta["classes"] == ["hand_r", "hand_l", "block", "rod"]
+    assert meta["twins"]["hand_r"] == "hand_l" and meta["twins"]["rod"] == "rod"
+    assert meta["handed"] == {"hand_r": True, "hand_l": True, "block": False, "rod": False}
+    assert meta["instances"][0] == {"class": "hand_r", "file": "hand_r/hand_r_g1.stl", "group": "g1",
+                                    "split": meta["instances"][0]["split"]}
+    assert meta["sampler"]["points"] == 48 and meta["sampler"]["copies"] == SMALL["copies"]
+    assert meta["sampler"]["mode"] == "surface" and meta["seed"] == 3
+    assert meta["catalog"] == str((base / "cat").resolve())
+    assert set(meta["versions"]) == {"shapes", "numpy", "trimesh", "torch"}
+    assert meta["versions"]["trimesh"] == trimesh.__version__
+
+
+def test_scale_is_size_in_mm(built):
+    base, out = built
+    meta = read_meta(out)
+    data = load_split(out, "train")
+    for k in range(len(data.labels)):
+        inst = meta["instances"][data.instance[k]]
+        mesh = trimesh.load(base / "cat" / inst["file"])
+        # the stored scale is the RMS radius of the cloud before normalising: a cloud on the
+        # surface cannot be farther out than the farthest vertex from the cloud's centroid,
+        # and scales with the part (catalog sizes 1..4)
+        assert 0 < data.scale[k] <= np.linalg.norm(mesh.vertices - mesh.vertices.mean(0), axis=1).max() * 1.5
+    rods = [(meta["instances"][i]["group"], s) for i, s, lab in zip(data.instance, data.scale, data.labels)
+            if meta["classes"][lab] == "rod"]
+    by_size = sorted(rods)
+    assert by_size[0][1] < by_size[-1][1]
+
+
+def test_same_seed_same_arrays(built, tmp_path):
+    base, out = built
+    again = build_dataset(base / "cat", tmp_path / "again", seed=3, **SMALL)
+    other = build_dataset(base / "cat", tmp_path / "other", seed=4, **SMALL)
+    for split in ("train", "val", "test"):
+        a, b = np.load(out / f"{split}.npz"), np.load(again / f"{split}.npz")
+        for key in a.files:
+            np.testing.assert_array_equal(a[key], b[key])
+    a, c = np.load(out / "train.npz"), np.load(other / "train.npz")
+    assert a["points"].shape != c["points"].shape or not np.allclose(a["points"], c["points"])
+
+
+def test_scan_and_mixed_modes(built, tmp_path):
+    base, _ = built
+    copies = {"train": 2, "val": 1, "test": 1}
+    scan = build_dataset(base / "cat", tmp_path / "scan", points=48, copies=copies, mode="scan", seed=1)
+    surface = build_dataset(base / "cat", tmp_path / "surf", points=48, copies=copies, mode="surface", seed=1)
+    mixed = build_dataset(base / "cat", tmp_path / "mixed", points=48, copies=copies, mode="mixed",
+                          scan_fraction=0.5, seed=1)
+
+    def one_sided(out, split):
+        # a single view of a convex block shows its normals within one hemisphere of the view
+        data = load_split(out, split)
+        flags = []
+        for k in np.flatnonzero(data.labels == data.classes.index("block")):
+            n = data.normals[k].astype(np.float64)
+            mean = n.mean(0) / (np.linalg.norm(n.mean(0)) + 1e-12)
+            flags.append(bool((n @ mean).min() > -1e-3))
+        return flags
+
+    assert all(one_sided(scan, "train"))
+    assert not any(one_sided(surface, "train"))
+    # mixed: copy 0 of each instance is a scan, copy 1 a surface sample
+    assert one_sided(mixed, "train") == [True, False] * (len(one_sided(mixed, "train")) // 2)
+    assert read_meta(mixed)["sampler"]["scan_fraction"] == 0.5
+
+
+def test_bad_mesh_leaves_nothing(tmp_path):
+    cat = make_catalog(tmp_path / "cat")
+    (cat / "rod" / "rod_g3.stl").write_bytes(b"")  # an empty file among good ones
+    with pytest.raises(MeshError, match="rod_g3.stl is empty"):
+        build_dataset(cat, tmp_path / "ds", **SMALL)
+    assert not (tmp_path / "ds").exists()
+    assert not [p for p in tmp_path.iterdir() if ".part" in p.name]
+
+
+def test_too_few_groups_names_the_class(tmp_path):
+    cat = make_catalog(tmp_path / "cat", groups=("g1", "g2"))
+    with pytest.raises(DataError, match="class 'hand_r' .* has 2 group\\(s\\); need at least 3"):
+        build_dataset(cat, tmp_path / "ds", **SMALL)
+
+
+def test_split_groups_fractions(tmp_path):
+    cat = read_catalog(make_catalog(tmp_path / "cat", groups=tuple(f"g{k}" for k in range(10))))
+    split = split_groups(cat, (0.6, 0.2, 0.2), seed=0)
+    counts = {s: sum(v == s for v in split.values()) for s in ("train", "val", "test")}
+    assert counts == {"train": 6, "val": 2, "test": 2}  # hand-worked: 10 groups at 60/20/20
+    assert split == split_groups(cat, (0.6, 0.2, 0.2), seed=0)
+    assert any(split_groups(cat, (0.6, 0.2, 0.2), seed=s) != split for s in range(1, 4))
+    with pytest.raises(ConfigError, match="split_fractions"):
+        split_groups(cat, (0.5, 0.2, 0.2))
+
+
+def test_out_dir_guards_and_replace(built, tmp_path):
+    base, _ = built
+    keep = tmp_path / "mine"
+    keep.mkdir()
+    (keep / "thesis.tex").write_text("precious")
+    with pytest.raises(DataError, match="not a shapes dataset"):
+        build_dataset(base / "cat", keep, **SMALL)
+    assert (keep / "thesis.tex").read_text() == "precious"
+    with pytest.raises(DataError, match="holds the catalog"):
+        build_dataset(base / "cat", base, **SMALL)
+    out = build_dataset(base / "cat", tmp_path / "ds", seed=0, **SMALL)
+    build_dataset(base / "cat", out, seed=1, **SMALL)  # a dataset is replaced whole
+    assert read_meta(out)["seed"] == 1
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    ({"mode": "lidar"}, "mode should be one of"),
+    ({"points": 1}, "points should be an integer >= 2"),
+    ({"copies": {"train": 1}}, "copies should have keys"),
+    ({"scan_fraction": 1.5}, "scan_fraction"),
+    ({"noise": -1.0}, "noise"),
+    ({"seed": -1}, "seed"),
+])
+def test_bad_options(built, tmp_path, kwargs, message):
+    base, _ = built
+    with pytest.raises(ConfigError, match=message):
+        build_dataset(base / "cat", tmp_path / "ds", **kwargs)
+    assert not (tmp_path / "ds").exists()
