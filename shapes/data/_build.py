@@ -85,7 +85,7 @@ def _scan_copies(n_copies: int, mode: str, scan_fraction: float) -> int:
         return 0
     if mode == "scan":
         return n_copies
-    return int(round(scan_fraction * n_copies))
+    return math.floor(scan_fraction * n_copies + 0.5)  # half up: 1 copy at 0.5 is a scan
 
 
 def _cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, float]:
@@ -131,7 +131,7 @@ def build_dataset(
     ``copies[split]`` clouds. A cloud is either ``points * oversample`` area-weighted
     surface samples thinned to ``points`` by farthest-point subsampling (``mode="surface"``),
     or a single-view virtual scan from a random direction (``"scan"``), or, for
-    ``"mixed"``, the first ``round(scan_fraction * copies)`` copies are scans and the rest
+    ``"mixed"``, the first ``floor(scan_fraction * copies + 0.5)`` copies are scans and the rest
     surface samples. Each cloud is then centred and scaled to unit RMS radius; the scale
     (in catalog units) is stored beside it.
 

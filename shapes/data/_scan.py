@@ -3,7 +3,7 @@
 An orthographic grid of parallel rays is cast at the mesh from one direction; only each ray's
 first hit is kept, so the far side of the part is missing just as in a real single-view scan.
 Ray casting goes through ``mesh.ray``, which is trimesh's Embree intersector when ``embreex`` is
-installed (about a hundred times faster than the pure-Python fallback; both give the same hits).
+installed (about a hundred times faster than trimesh's pure-Python fallback, which also needs rtree).
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ import math
 import numpy as np
 import trimesh
 
-from shapes.errors import InputError, MeshError
+from shapes.errors import InputError, MeshError, ShapesError
 from shapes.seeding import rng
 from shapes.data._sample import _check_count
 
@@ -64,7 +64,12 @@ def _cast(mesh, direction, resolution, gen):
     plane = a.reshape(-1, 1) * u + b.reshape(-1, 1) * w  # (R*R, 3)
     origins = centre + plane - 2.0 * radius * direction
     directions = np.broadcast_to(direction, origins.shape)
-    locations, rays, faces = mesh.ray.intersects_location(origins, directions, multiple_hits=False)
+    try:
+        locations, rays, faces = mesh.ray.intersects_location(origins, directions, multiple_hits=False)
+    except ImportError as exc:  # without embreex, trimesh's fallback needs rtree
+        raise ShapesError(
+            f"ray casting needs the embreex package (or rtree for trimesh's slow fallback): {exc}"
+        ) from exc
     order = np.argsort(np.asarray(rays), kind="stable")  # ray order, so a seed fixes the result
     locations = np.asarray(locations, dtype=np.float64)[order]
     return locations, np.asarray(faces, dtype=np.int64)[order], radius
