@@ -1,0 +1,488 @@
+"""Vector-gated graph network: scalar and vector channels per point, messages on a neighbour graph.
+
+Each point carries scalar channels ``s (B, N, S)`` and vector channels ``v (B, N, V, 3)``. With
+``handedness`` it also carries pseudo-scalars ``p (B, N, V)`` and pseudo-vectors
+``a (B, N, V, 3)``. Under an orthogonal map ``x -> Q x`` (det Q = +-1) the channels transform as::
+
+    s -> s,   v -> Q v,   p -> det(Q) p,   a -> det(Q) Q a
+
+Every operation keeps that parity: linear maps that touch vectors mix channels only (never x, y, z)
+and have no bias; parity-odd quantities are multiplied only by parity-even weights, or by odd ones
+when the result is meant to flip (odd x odd = even); the cross product of two vectors is a
+pseudo-vector and a triple product is a pseudo-scalar. Rotations (det Q = +1) therefore leave every
+readout feature unchanged. A reflection flips the sign of the pseudo-scalars in the readout, which is
+how the network tells a left-hand part from its right-hand twin. With ``handedness=False`` nothing
+parity-odd is ever formed, so the features are invariant to reflections as well (symmetry ``E3``).
+
+Points rotate as ``points @ R.T`` (column-vector convention, ``x' = R x``), and vector channels
+rotate the same way: ``v @ R.T``.
+
+The construction follows the published idea of vector-valued features handled by linear maps, norms
+and inner products (E(n)-equivariant graph networks, geometric vector perceptrons, vector neurons),
+extended with cross and triple products so that handedness is not lost.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import NamedTuple
+
+import torch
+from torch import nn
+from torch.nn import functional as F
+
+from shapes.backbones._base import Backbone, check_points, masked_max, masked_mean
+from shapes.errors import ConfigError, InputError
+from shapes.geometry import gather_neighbours, knn_graph, radius_graph, relative_vectors
+
+__all__ = ["VectorGateBackbone", "VectorGateConfig", "PointFeatures"]
+
+# With cutoff=None, lengths are divided by this many mean neighbour distances of the cloud: the
+# k-th neighbour of a surface sample lies at about 1.5 mean neighbour distances, so 3 keeps nearly
+# every kNN edge inside the envelope while still letting the far ones fade out smoothly.
+_RELATIVE_CUTOFF = 3.0
+# Added under square roots so that norms and unit vectors stay differentiable at zero length.
+_EPS = 1e-8
+
+
+@dataclasses.dataclass
+class VectorGateConfig:
+    scalars: int = 32  # scalar channels per point: enough for ~20 part classes, cheap on CPU
+    vectors: int = 16  # vector channels (and as many pseudo channels when handed); vectors cost 3x
+    layers: int = 3  # message-passing rounds: 3 x k hops reach well beyond one feature of a part
+    k: int = 16  # neighbours per point: a surface patch wide enough to see curvature and edges
+    radius: float | None = None  # None: kNN graph (adapts to point density); a float: ball query
+    num_radial: int = 8  # Gaussian radial basis functions: smooth resolution of the edge length
+    cutoff: float | None = None  # None: lengths in units of the cloud's mean neighbour distance
+    handedness: bool = True  # keep cross/triple products so mirror twins can be told apart
+
+
+class PointFeatures(NamedTuple):
+    """Per-point features after one layer; ``p`` and ``a`` are None without handedness.
+
+    s : (B, N, S) scalars, v : (B, N, V, 3) vectors, p : (B, N, V) pseudo-scalars,
+    a : (B, N, V, 3) pseudo-vectors.
+    """
+
+    s: torch.Tensor
+    v: torch.Tensor
+    p: torch.Tensor | None
+    a: torch.Tensor | None
+
+
+class EdgeGeometry(NamedTuple):
+    """What every layer needs about the graph, built once per forward pass and shared by all layers.
+
+    index (B, N, k) senders; mean (B, N, k) 1 / (number of valid neighbours) on valid edges, 0 on
+    missing or padded ones, so a sum over k is a masked mean; weight (B, N, k) ``mean`` times the
+    smooth envelope; rel (B, N, k, 3) edge vectors sender - receiver in units of ``L``; inv_len
+    (B, N, k, 1) 1 / length, floored; rbf (B, N, k, R) radial basis of the length.
+    """
+
+    index: torch.Tensor
+    mean: torch.Tensor
+    weight: torch.Tensor
+    rel: torch.Tensor
+    inv_len: torch.Tensor
+    rbf: torch.Tensor
+
+
+# ---------------------------------------------------------------------------------------------
+# free functions
+
+
+def smooth_cutoff(x: torch.Tensor) -> torch.Tensor:
+    """Cosine envelope on scaled lengths ``x``: 1 at 0, falls to 0 at 1 with zero slope, 0 beyond."""
+    return 0.5 * (torch.cos(math.pi * x.clamp(max=1.0)) + 1.0)
+
+
+def radial_basis(x: torch.Tensor, num: int) -> torch.Tensor:
+    """Gaussians centred evenly on [0, 1] of scaled lengths ``x (...)``, times the envelope -> (..., num)."""
+    centres = torch.linspace(0.0, 1.0, num, dtype=x.dtype, device=x.device)
+    width = 1.0 / num
+    return torch.exp(-(((x.unsqueeze(-1) - centres) / width) ** 2)) * smooth_cutoff(x).unsqueeze(-1)
+
+
+def vector_norm(v: torch.Tensor) -> torch.Tensor:
+    """Length of each vector channel ``v (..., C, 3) -> (..., C)``, smooth at zero."""
+    return torch.sqrt((v * v).sum(-1) + _EPS)
+
+
+def dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """Channel-wise inner product ``(..., C, 3) x (..., C, 3) -> (..., C)``; broadcasts."""
+    return (a * b).sum(-1)
+
+
+_NEXT, _PREV = [1, 2, 0], [2, 0, 1]
+
+
+def cross(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """Channel-wise cross product over the last axis, ``a x b``; broadcasts like ``a * b``.
+
+    Written with index shuffles: on CPU it is several times faster than ``torch.linalg.cross``.
+    """
+    return a[..., _NEXT] * b[..., _PREV] - a[..., _PREV] * b[..., _NEXT]
+
+
+def edge_geometry(points: torch.Tensor, mask: torch.Tensor, config: VectorGateConfig) -> EdgeGeometry:
+    """Build the neighbour graph of centred ``points (B, N, 3)`` and its geometry.
+
+    Lengths are divided by a unit ``L``: the absolute ``cutoff`` if one is given, else
+    ``_RELATIVE_CUTOFF`` mean neighbour distances of each cloud. That mean is an invariant, so every
+    symmetry is kept, and the same weights serve any point count and any unit of length.
+    """
+    if config.radius is None:
+        graph = knn_graph(points, config.k, mask=mask)
+    else:
+        graph = radius_graph(points, config.radius, config.k, mask)
+    valid = (graph.valid & mask.unsqueeze(-1)).to(points.dtype)  # (B, N, k)
+    rel = relative_vectors(points, graph.index)  # (B, N, k, 3) sender - receiver; 0 on invalid slots
+    dist = torch.sqrt((rel * rel).sum(-1))  # (B, N, k)
+    if config.cutoff is None:
+        mean_dist = (dist * valid).sum((1, 2)) / valid.sum((1, 2)).clamp_min(1.0)  # (B,)
+        unit_len = (_RELATIVE_CUTOFF * mean_dist).clamp_min(_EPS).reshape(-1, 1, 1)  # (B, 1, 1)
+    else:
+        unit_len = points.new_full((points.shape[0], 1, 1), float(config.cutoff))
+    x = dist / unit_len  # (B, N, k) lengths in units of L
+    mean = valid / valid.sum(-1, keepdim=True).clamp_min(1.0)  # (B, N, k)
+    return EdgeGeometry(
+        index=graph.index,
+        mean=mean,
+        weight=mean * smooth_cutoff(x),
+        rel=rel / unit_len.unsqueeze(-1),
+        # floored so that duplicate points (length 0) give direction terms of 0, not noise / 0
+        inv_len=torch.rsqrt(x * x + 1e-6).unsqueeze(-1),
+        rbf=radial_basis(x, config.num_radial),
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# blocks
+
+
+class ChannelMix(nn.Module):
+    """Linear map over the channel axis of vectors, ``(..., C_in, 3) -> (..., C_out, 3)``.
+
+    No bias and no mixing of x, y, z: it commutes with every orthogonal map, and a pseudo-vector
+    input stays a pseudo-vector (never mix vectors and pseudo-vectors in one map).
+    """
+
+    def __init__(self, c_in: int, c_out: int):
+        super().__init__()
+        self.linear = nn.Linear(c_in, c_out, bias=False)
+
+    def forward(self, v: torch.Tensor) -> torch.Tensor:
+        return self.linear(v.transpose(-1, -2)).transpose(-1, -2)  # (..., C_out, 3)
+
+
+class VectorNorm(nn.Module):
+    """Equivariant normalisation: divide vectors ``(..., C, 3)`` by their RMS length over channels."""
+
+    def __init__(self, channels: int):
+        super().__init__()
+        self.gain = nn.Parameter(torch.ones(channels))
+
+    def forward(self, v: torch.Tensor) -> torch.Tensor:
+        rms = torch.sqrt((v * v).sum(-1).mean(-1, keepdim=True) + _EPS)  # (..., 1)
+        return v * (self.gain / rms).unsqueeze(-1)
+
+
+class OddNorm(nn.Module):
+    """RMS normalisation of pseudo-scalars ``(..., C)``: no bias and no centring, so the sign flips."""
+
+    def __init__(self, channels: int):
+        super().__init__()
+        self.gain = nn.Parameter(torch.ones(channels))
+
+    def forward(self, p: torch.Tensor) -> torch.Tensor:
+        # a larger floor than for vectors: pseudo-scalars of nearly symmetric patches are ~0, and
+        # blowing their rounding noise up to unit size would only add noise.
+        return p * (self.gain / torch.sqrt((p * p).mean(-1, keepdim=True) + 1e-6))
+
+
+class FeatureNorm(nn.Module):
+    """Normalise every kind of channel: LayerNorm on scalars, RMS over channels on the others."""
+
+    def __init__(self, config: VectorGateConfig):
+        super().__init__()
+        self.handed = config.handedness
+        self.s = nn.LayerNorm(config.scalars)
+        self.v = VectorNorm(config.vectors)
+        if self.handed:
+            self.p = OddNorm(config.vectors)
+            self.a = VectorNorm(config.vectors)
+
+    def forward(self, x: PointFeatures) -> PointFeatures:
+        if not self.handed:
+            return PointFeatures(self.s(x.s), self.v(x.v), None, None)
+        return PointFeatures(self.s(x.s), self.v(x.v), self.p(x.p), self.a(x.a))
+
+
+class Embedding(nn.Module):
+    """Initial features from each point's neighbourhood and its offset from the centroid.
+
+    Three vectors per point: ``c1`` the mean edge vector to its neighbours (it points into the
+    local curvature), ``c2`` the offset from the centroid over the cloud's RMS radius, and
+    ``c3 = C c2`` with ``C = mean_j r_ij r_ij^T`` the local second moment (how the patch spreads
+    along the centroid direction). Scalars: their lengths, their pairwise cosines and the mean and
+    spread of the neighbour distances. Pseudo-vectors: the three cross products. Pseudo-scalar: the
+    normalised triple product ``det[c1, c2, c3] / (|c1| |c2| |c3|)``, the first handed quantity.
+    (A triple product of ``c1``, ``c2`` and a plain edge average would vanish: ``c1`` is that average.)
+    """
+
+    def __init__(self, config: VectorGateConfig):
+        super().__init__()
+        S, V = config.scalars, config.vectors
+        self.handed = config.handedness
+        self.scalar = nn.Linear(8, S)
+        self.vector = ChannelMix(3, V)
+        if self.handed:
+            self.pseudo_vector = ChannelMix(3, V)
+            self.pseudo_scalar = nn.Linear(1, V, bias=False)  # no bias: a bias is parity even
+
+    def forward(self, centred: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry) -> PointFeatures:
+        rms = torch.sqrt(masked_mean((centred * centred).sum(-1, keepdim=True), mask) + _EPS)  # (B, 1)
+        c2 = centred / rms.unsqueeze(1)  # (B, N, 3)
+        rel, mean = geom.rel, geom.mean.unsqueeze(-1)  # (B, N, k, 3) in units of L, (B, N, k, 1)
+        c1 = (rel * mean).sum(2)  # (B, N, 3)
+        along = (rel * c2.unsqueeze(2)).sum(-1, keepdim=True)  # (B, N, k, 1)
+        c3 = (rel * along * mean).sum(2)  # (B, N, 3)
+        c = torch.stack([c1, c2, c3], -2)  # (B, N, 3, 3): channel, xyz
+        n = vector_norm(c)  # (B, N, 3)
+        cos = dot(c, c.roll(-1, -2)) / (n * n.roll(-1, -1))  # (B, N, 3): c1.c2, c2.c3, c3.c1
+        dist = torch.sqrt((rel * rel).sum(-1, keepdim=True) + _EPS)  # (B, N, k, 1)
+        mean_d = (dist * mean).sum(2)  # (B, N, 1)
+        spread = torch.sqrt((((dist - mean_d.unsqueeze(2)) ** 2) * mean).sum(2) + _EPS)  # (B, N, 1)
+        s = self.scalar(torch.cat([n, cos, mean_d, spread], -1))  # (B, N, S)
+        v = self.vector(c)  # (B, N, V, 3)
+        if not self.handed:
+            return PointFeatures(s, v, None, None)
+        axial = cross(c, c.roll(-1, -2))  # (B, N, 3, 3): c1 x c2, c2 x c3, c3 x c1
+        a = self.pseudo_vector(axial)  # (B, N, V, 3)
+        triple = dot(axial[..., 0, :], c3).unsqueeze(-1) / n.prod(-1, keepdim=True)  # (B, N, 1)
+        p = self.pseudo_scalar(triple)  # (B, N, V)
+        return PointFeatures(s, v, p, a)
+
+
+class Message(nn.Module):
+    """Messages on the edges, built from invariants, averaged over each receiver's valid neighbours.
+
+    Parity-even edge invariants: the radial basis of the length, the receiver's and the sender's
+    scalars, ``v . u`` at both ends with the unit edge direction ``u``, and the channel-wise inner
+    products ``v_i . v_j``. Parity-odd ones (handed only): the receiver's ``a . u`` (its
+    pseudo-vectors hold cross products, so these are triple products ``(v_a x v_b) . u``) and the
+    sender's pseudo-scalars (the receiver's own enter at the update). The edge MLP sees the odd ones
+    only through products of two odd linear maps, so its hidden layer stays even and still knows
+    their relative signs.
+
+    Messages: scalars; vectors along the edge (``r_ij`` times an even weight) and the sender's vectors
+    times a per-channel weight; pseudo-scalars (odd invariants times even weights); pseudo-vectors
+    along the edge (``r_ij`` times an odd weight). Only the polar vectors travel along the edges, the
+    costliest tensors here being (B, N, k, V, 3); pseudo-vectors are rebuilt at each point from cross
+    products of what arrived.
+
+    Shape:
+        PointFeatures (s (B, N, S), v (B, N, V, 3), p (B, N, V), a (B, N, V, 3)) -> the same shapes.
+    """
+
+    def __init__(self, config: VectorGateConfig):
+        super().__init__()
+        S, V, R = config.scalars, config.vectors, config.num_radial
+        self.S, self.V, self.handed = S, V, config.handedness
+        self.H = H = S  # edge hidden width: as wide as the scalars it feeds
+        self.receiver = nn.Linear(S, H)
+        self.sender = nn.Linear(S, H, bias=False)  # applied before the gather: k times cheaper
+        self.even = nn.Linear(R + 3 * V + (V if self.handed else 0), H, bias=False)
+        # The scalar message is linear in the hidden layer, so it is applied after the average.
+        self.scalar = nn.Linear(H, S)
+        if self.handed:
+            # no bias on anything odd: a bias is parity even
+            self.odd = nn.Linear(2 * V, 4 * V, bias=False)
+            self.coef = nn.Linear(H, 3 * V)
+        else:
+            self.coef = nn.Linear(H, 2 * V)
+
+    def forward(self, x: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
+        V, H = self.V, self.H
+        X = torch.cat([x.v, x.a], -2) if self.handed else x.v  # (B, N, C, 3): vectors [, pseudo]
+        parts = [self.sender(x.s), x.v.flatten(-2)] + ([x.p] if self.handed else [])
+        widths = [H, 3 * V] + ([V] if self.handed else [])
+        nb = gather_neighbours(torch.cat(parts, -1), geom.index).split(widths, -1)
+        sj, vj = nb[0], nb[1].unflatten(-1, (V, 3))  # (B, N, k, H), (B, N, k, V, 3)
+        rel = geom.rel  # (B, N, k, 3)
+        Xi_u = (X @ rel.transpose(-1, -2)).transpose(-1, -2) * geom.inv_len  # (B, N, k, C)
+        vj_u = (vj * rel.unsqueeze(-2)).sum(-1) * geom.inv_len  # (B, N, k, V)
+        vivj = (vj * x.v.unsqueeze(2)).sum(-1)  # (B, N, k, V)
+        even = [geom.rbf, Xi_u[..., :V], vj_u, vivj]
+        if self.handed:
+            odd = self.odd(torch.cat([Xi_u[..., V:], nb[2]], -1))  # (B, N, k, 4V), parity odd
+            o1, o2, op, cu_a = odd.split([V, V, V, V], -1)
+            even.append(o1 * o2)  # odd x odd = even
+        pre = self.even(torch.cat(even, -1)) + self.receiver(x.s).unsqueeze(2) + sj  # (B, N, k, H)
+        h = F.silu(pre)  # (B, N, k, H), parity even
+        w = geom.weight.unsqueeze(-1)  # (B, N, k, 1): masked mean with the envelope
+        ms = self.scalar((h * w).sum(2))  # (B, N, S)
+        coef = self.coef(h) * w  # (B, N, k, 2V | 3V), parity even
+        if self.handed:
+            cu_v, cX, gp = coef.split([V, V, V], -1)
+            cu = torch.cat([cu_v, cu_a * w], -1)  # (B, N, k, 2V): even weights give v, odd give a
+        else:
+            cu, cX = coef.split([V, V], -1)
+        along = cu.transpose(-1, -2) @ rel  # (B, N, C, 3): sum_j w_ij r_ij per channel
+        mv = along[..., :V, :] + (vj * cX.unsqueeze(-1)).sum(2)  # (B, N, V, 3)
+        if not self.handed:
+            return PointFeatures(ms, mv, None, None)
+        mp = (op * gp).sum(2)  # (B, N, V): odd x even
+        return PointFeatures(ms, mv, mp, along[..., V:, :])
+
+
+class Update(nn.Module):
+    """Point update: mix vector channels, gate them by a sigmoid of scalars, residual on every kind.
+
+    With handedness, cross products between mixed channel pairs couple the kinds: two vectors give a
+    pseudo-vector, a vector and a pseudo-vector give a vector (two pseudo-vectors would give a
+    pseudo-vector again: the two signs cancel and the cross product brings its own); ``v_t . a_t`` gives pseudo-scalars. Scalars
+    see ``s``, the scalar message, the norms of the new vectors and products of pairs of
+    pseudo-scalars; one MLP on them gives the scalar update and the gates.
+    """
+
+    def __init__(self, config: VectorGateConfig):
+        super().__init__()
+        S, V = config.scalars, config.vectors
+        self.S, self.V, self.handed = S, V, config.handedness
+        n_in = 2 * S + V
+        if self.handed:
+            self.pair_v = ChannelMix(2 * V, 2 * V)
+            self.pair_a = ChannelMix(2 * V, V)
+            self.mix_v = ChannelMix(3 * V, V)
+            self.mix_a = ChannelMix(3 * V, V)
+            self.mix_p = nn.Linear(3 * V, V, bias=False)
+            self.odd_pair = nn.Linear(V, 2 * V, bias=False)
+            n_in += 2 * V
+        else:
+            self.mix_v = ChannelMix(2 * V, V)
+        self.hidden = nn.Linear(n_in, 2 * S)  # twice as wide as the scalars, as transformer MLPs are
+        self.out = nn.Linear(2 * S, S + V + (2 * V if self.handed else 0))
+
+    def forward(self, x: PointFeatures, xn: PointFeatures, m: PointFeatures) -> PointFeatures:
+        S, V = self.S, self.V
+        vv = torch.cat([xn.v, m.v], -2)  # (B, N, 2V, 3)
+        if self.handed:
+            aa = torch.cat([xn.a, m.a], -2)  # (B, N, 2V, 3)
+            w1, w2 = self.pair_v(vv).chunk(2, -2)  # (B, N, V, 3) each
+            z = self.pair_a(aa)  # (B, N, V, 3)
+            vt = self.mix_v(torch.cat([vv, cross(w2, z)], -2))  # (B, N, V, 3) vector
+            at = self.mix_a(torch.cat([aa, cross(w1, w2)], -2))  # (B, N, V, 3) pseudo-vector
+            pt = self.mix_p(torch.cat([xn.p, m.p, dot(vt, at)], -1))  # (B, N, V) pseudo-scalar
+            q1, q2 = self.odd_pair(pt).chunk(2, -1)
+            feats = [xn.s, m.s, vector_norm(vt), vector_norm(at), q1 * q2]
+        else:
+            vt = self.mix_v(vv)  # (B, N, V, 3)
+            feats = [xn.s, m.s, vector_norm(vt)]
+        out = self.out(F.silu(self.hidden(torch.cat(feats, -1))))  # (B, N, S + V [+ 2V])
+        s = x.s + out[..., :S]
+        v = x.v + torch.sigmoid(out[..., S : S + V]).unsqueeze(-1) * vt
+        if not self.handed:
+            return PointFeatures(s, v, None, None)
+        ga, gp = out[..., S + V :].chunk(2, -1)
+        a = x.a + torch.sigmoid(ga).unsqueeze(-1) * at
+        p = x.p + torch.sigmoid(gp) * pt  # odd x even: the sign of p_t survives
+        return PointFeatures(s, v, p, a)
+
+
+class VectorGateLayer(nn.Module):
+    """One round: normalise, send messages along the edges, update the points (pre-norm residual)."""
+
+    def __init__(self, config: VectorGateConfig):
+        super().__init__()
+        self.norm = FeatureNorm(config)
+        self.message = Message(config)
+        self.update = Update(config)
+
+    def forward(self, x: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
+        xn = self.norm(x)
+        return self.update(x, xn, self.message(xn, geom))
+
+
+# ---------------------------------------------------------------------------------------------
+# the backbone
+
+
+def _check_config(c: VectorGateConfig) -> None:
+    """Raise ConfigError for options out of range, naming the option and the value found."""
+    for field in ("scalars", "vectors", "layers", "k", "num_radial"):
+        value = getattr(c, field)
+        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+            raise ConfigError(f"vector_gate option '{field}' should be a positive integer, got {value!r}.")
+    for field in ("radius", "cutoff"):
+        value = getattr(c, field)
+        if value is not None and (
+            isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or math.isinf(value)
+        ):
+            raise ConfigError(f"vector_gate option '{field}' should be a positive number or None, got {value!r}.")
+    if not isinstance(c.handedness, bool):
+        raise ConfigError(f"vector_gate option 'handedness' should be true or false, got {c.handedness!r}.")
+
+
+def readout(x: PointFeatures) -> torch.Tensor:
+    """Invariant per-point features ``(B, N, F/2)``: scalars, vector norms and, if handed,
+    pseudo-vector norms and the pseudo-scalars themselves (not squared: their sign is the handedness)."""
+    parts = [x.s, vector_norm(x.v)]
+    if x.p is not None:
+        parts += [vector_norm(x.a), x.p]
+    return torch.cat(parts, -1)
+
+
+class VectorGateBackbone(Backbone):
+    """Vector-gated message passing on a kNN (or radius) graph; invariant features by mean + max pooling.
+
+    ``symmetry`` is ``"SE3"`` with handedness (invariant to rotations and translations; a mirror image
+    gives other features) and ``"E3"`` without (reflections too). ``out_features = 2 (S + V)``, or
+    ``2 (S + 3V)`` with handedness.
+
+    Shape:
+        points (B, N, 3), mask (B, N) bool | None -> (B, out_features)
+    """
+
+    name = "vector_gate"
+    Config = VectorGateConfig
+
+    def __init__(self, **kwargs):
+        super().__init__(**kwargs)
+        c = self.config
+        _check_config(c)
+        self.symmetry = "SE3" if c.handedness else "E3"
+        self.embed = Embedding(c)
+        self.layers = nn.ModuleList(VectorGateLayer(c) for _ in range(c.layers))
+        self.final_norm = FeatureNorm(c)
+        self.out_features = 2 * (c.scalars + c.vectors + (2 * c.vectors if c.handedness else 0))
+
+    def _features(self, points: torch.Tensor, mask: torch.Tensor) -> list[PointFeatures]:
+        k = self.config.k
+        if self.config.radius is None:
+            fewest = int(mask.sum(1).min()) if mask.numel() else 0
+            if fewest <= k:
+                raise InputError(f"k = {k} neighbours needs clouds of at least {k + 1} points, got {fewest}.")
+        points = torch.where(mask.unsqueeze(-1), points, torch.zeros_like(points))  # junk can't leak
+        centred = points - masked_mean(points, mask).unsqueeze(1)  # (B, N, 3): translation invariant
+        geom = edge_geometry(centred, mask, self.config)
+        x = self.embed(centred, mask, geom)
+        out = [x]
+        for layer in self.layers:
+            x = layer(x, geom)
+            out.append(x)
+        return out
+
+    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> list[PointFeatures]:
+        """Per-point features after the embedding and after every layer (``layers + 1`` entries).
+
+        Under ``points @ Q.T + t`` with Q orthogonal: ``s`` is unchanged, ``v -> v @ Q.T``,
+        ``p -> det(Q) p``, ``a -> det(Q) a @ Q.T``. Values at padded points are meaningless.
+        """
+        return self._features(points, check_points(points, mask))
+
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+        mask = check_points(points, mask)
+        per_point = readout(self.final_norm(self._features(points, mask)[-1]))  # (B, N, F/2)
+        return torch.cat([masked_mean(per_point, mask), masked_max(per_point, mask)], -1)
