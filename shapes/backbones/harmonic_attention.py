@@ -161,8 +161,10 @@ class EdgeFrame(NamedTuple):
         Cosine cutoff of the edge lengths, 0 on invalid slots.
     harmonics : list of (B, N, k, 2l+1) float
         ``Y_l`` of the edge directions, ``l = 0..2 l_max`` (the reference path uses these).
-    basis : dict l_in -> (B, N, k, 2 l_in + 1, W_l) float, or None
-        Angular basis of every path from degree ``l_in``, columns in :func:`angular_pairs` order.
+    basis : dict, or None
+        ``basis[l_in]`` ``(B, N, k, 2 l_in + 1, W_l)``: angular basis of every path from degree
+        ``l_in``, columns in :func:`angular_pairs` order; ``basis[l_in, cols]``: those columns only
+        (the key paths of a layer that has keys for some paths only). None for the reference.
     """
 
     index: torch.Tensor
@@ -185,7 +187,7 @@ class _Group(NamedTuple):
     keys: list  # positions in `paths` of the key paths (output type is a query type)
     key_ids: list  # index into the key-weight list of each key path
     key_slice: slice | None  # radial outputs of the key paths: (n_keys, C_in) path-major
-    all_keys: bool  # every path of the group is a key path
+    key_cols: tuple | None  # basis columns of the key paths when they are not all of them
 
 
 class HarmonicAttentionLayer(nn.Module):
@@ -235,17 +237,18 @@ class HarmonicAttentionLayer(nn.Module):
                 keys=keys,
                 key_ids=[key_pos[ids[n]] for n in keys],
                 key_slice=slice(key_at, key_at + len(keys) * c_in) if keys else None,
-                all_keys=len(keys) == len(ids),
+                key_cols=None,
             )
+            if keys and len(keys) < len(ids):
+                starts = [sum(widths[:n]) for n in range(len(widths))]
+                group = group._replace(key_cols=tuple(c for n in keys for c in range(starts[n], starts[n] + widths[n])))
             # Rows of the radial output layer that give, for every (channel, basis column), the
             # weight of that column's path: the fast path multiplies them straight into Z.
             path_of_col = [n for n, w in enumerate(widths) for _ in range(w)]
             rows = [value_at + n * c_in + c for c in range(c_in) for n in path_of_col]
-            key_cols = [col for n in keys for col in range(sum(widths[:n]), sum(widths[: n + 1]))]
             key_rows = [key_at + m * c_in + c for c in range(c_in) for m, n in enumerate(keys) for _ in range(widths[n])]
             self.register_buffer(f"rows_{g}", torch.tensor(rows, dtype=torch.long), persistent=False)
             self.register_buffer(f"key_rows_{g}", torch.tensor(key_rows, dtype=torch.long), persistent=False)
-            self.register_buffer(f"key_cols_{g}", torch.tensor(key_cols, dtype=torch.long), persistent=False)
             value_at += len(ids) * c_in
             key_at += len(keys) * c_in
             self.groups.append(group)
@@ -291,8 +294,8 @@ class HarmonicAttentionLayer(nn.Module):
             weighted.append(z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"rows_{g}")))  # (B, N, k, C*W)
             if not group.keys:
                 continue
-            if not group.all_keys:  # basis columns of the key paths only (the basis needs no gradient)
-                basis = basis.index_select(-1, getattr(self, f"key_cols_{g}"))  # (B, N, k, 2l+1, Wk)
+            if group.key_cols is not None:  # only some paths have keys: their own basis columns
+                basis = edges.basis[l_in, group.key_cols]  # (B, N, k, 2l+1, Wk)
                 z = xj * basis if l_in == 0 else xj @ basis  # (B, N, k, C, Wk)
             key = z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"key_rows_{g}"))  # (B, N, k, C*Wk)
             # Pull each query back through its key mixing, on the receiver: q~ = W^K^T q per head.
@@ -435,10 +438,14 @@ class HarmonicAttentionBackbone(Backbone):
         self.symmetry = "SE3" if c.parity == "full" else "E3"
         self.out_features = 2 * invariant_width(types)
 
-    def _coupling_matrix(self, l_in: int, dtype, device) -> torch.Tensor:
-        key = (l_in, dtype, str(device))
+    def _coupling_matrix(self, l_in: int, cols, dtype, device) -> torch.Tensor:
+        """Coupling matrix of degree ``l_in`` (all basis columns, or the columns ``cols``), cached."""
+        key = (l_in, cols, dtype, str(device))
         if key not in self._coupling:
-            self._coupling[key] = coupling_matrix(l_in, self.pairs[l_in], self.l_f_max, clebsch_gordan, dtype, device)
+            m = coupling_matrix(l_in, self.pairs[l_in], self.l_f_max, clebsch_gordan, dtype, device)
+            if cols is not None:
+                m = m.unflatten(-1, (2 * l_in + 1, -1))[..., list(cols)].flatten(-2)
+            self._coupling[key] = m
         return self._coupling[key]
 
     def edge_frame(self, points: torch.Tensor, mask: torch.Tensor, reference: bool = False) -> EdgeFrame:
@@ -455,10 +462,12 @@ class HarmonicAttentionBackbone(Backbone):
         basis = None
         if not reference:
             y = torch.cat(harmonics, -1)  # (B, N, k, (l_f_max+1)^2)
-            basis = {
-                l: (y @ self._coupling_matrix(l, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
-                for l in self.degrees
-            }
+            needed = [(l, None) for l in self.degrees]
+            needed += sorted({(g.t_in[0], g.key_cols) for layer in self.layers for g in layer.groups if g.key_cols})
+            basis = {}
+            for l, cols in needed:
+                b = (y @ self._coupling_matrix(l, cols, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
+                basis[l if cols is None else (l, cols)] = b
         return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis)
 
     def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> list:

@@ -1,0 +1,262 @@
+"""Harmonic-filter attention: invariance and per-layer equivariance, parity in both directions,
+fast path against the dense reference, masks, numerics and option validation."""
+
+import math
+
+import pytest
+import torch
+
+from shapes.backbones._equivariant import angular_pairs, layer_paths, masked_softmax, proper_parity
+from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
+from shapes.errors import ConfigError, InputError
+from shapes.geometry import random_improper, random_rotations, reflection, wigner_d
+
+SMALL = {"k": 8}  # default channels and layers, small neighbourhoods: the shipped architecture, cheaply
+
+
+def make(dtype=torch.float64, seed=0, **options):
+    torch.manual_seed(seed)
+    return HarmonicAttentionBackbone(**{**SMALL, **options}).to(dtype).eval()
+
+
+def rotate(points, R):
+    return points @ R.transpose(-1, -2)  # DESIGN.md: x' = R x
+
+
+def rel(a, b):
+    a, b = a.detach(), b.detach()
+    return float((a - b).abs().max() / a.abs().max().clamp_min(1e-30))
+
+
+def random_cloud(b=1, n=64, seed=7, dtype=torch.float64):
+    return torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
+
+
+def helix_cloud(n=64, dtype=torch.float64):
+    """A right-hand helix (FACTS.md: (r cos t, r sin t, p t / 2 pi)) with an off-axis lump at one end.
+
+    Chiral: no rotation maps it onto its mirror image, so an SE3 model may (and should) tell them apart.
+    """
+    t = torch.linspace(0, 4 * math.pi, n - 8, dtype=dtype)
+    helix = torch.stack([torch.cos(t), torch.sin(t), 0.25 * t], -1)
+    g = torch.Generator().manual_seed(11)
+    lump = torch.tensor([1.5, 0.3, 0.0], dtype=dtype) + 0.2 * torch.randn(8, 3, generator=g, dtype=dtype)
+    return torch.cat([helix, lump])[None]
+
+
+def transform_features(features: dict, Q: torch.Tensor) -> dict:
+    """Expected features after the orthogonal map ``Q (B, 3, 3)``: type (l, p) goes to ``s_p D_l(R) x``.
+
+    ``R = Q`` and ``s = 1`` for a rotation; ``R = -Q`` and ``s = p`` for an improper map (DESIGN.md:
+    Y_l(R v) = D_l(R) Y_l(v), and inversion multiplies a parity-p feature by p).
+    """
+    improper = torch.det(Q) < 0  # (B,)
+    R = torch.where(improper[:, None, None], -Q, Q)
+    out = {}
+    for (l, p), x in features.items():
+        D = wigner_d(l, R)  # (B, 2l+1, 2l+1)
+        sign = torch.where(improper, float(p), 1.0).to(x.dtype)[:, None, None, None]
+        out[(l, p)] = sign * torch.einsum("bnci,bji->bncj", x, D)  # (B, N, C, 2l+1)
+    return out
+
+
+# -- invariance and equivariance --------------------------------------------------------------
+
+
+@pytest.mark.parametrize("dtype,tol", [(torch.float64, 1e-9), (torch.float32, 1e-4)])
+def test_features_invariant_under_50_rotations_and_translations(dtype, tol):
+    # reference: DESIGN.md equivariance claim; Haar rotations from shapes.geometry (KS-tested there)
+    net = make(dtype)
+    cloud = random_cloud(dtype=dtype)
+    R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
+    shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=dtype) * 5
+    moved = rotate(cloud.expand(50, -1, -1), R) + shift
+    base = net(cloud)
+    assert rel(base.expand(50, -1), net(moved)) <= tol
+    # both directions: the features do depend on the cloud's shape
+    assert rel(base, net(random_cloud(seed=8, dtype=dtype))) > 1e-2
+
+
+@pytest.mark.parametrize("improper", [False, True], ids=["rotation", "improper"])
+@pytest.mark.parametrize("options", [{}, {"l_max": 3, "channels": {0: 8, 1: 4, 2: 2, 3: 2}}, {"parity": "even"}],
+                         ids=["default", "l3", "even"])
+def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
+    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule of DESIGN.md
+    net = make(**options)
+    cloud = random_cloud(n=40)
+    gen = torch.Generator().manual_seed(4)
+    Q = (random_improper if improper else random_rotations)(3, generator=gen, dtype=torch.float64)
+    before = net.forward_features(cloud.expand(3, -1, -1))
+    after = net.forward_features(rotate(cloud.expand(3, -1, -1), Q))
+    assert len(before) == net.config.layers
+    for layer_before, layer_after in zip(before, after):
+        expected = transform_features(layer_before, Q)
+        for t in layer_before:
+            assert rel(expected[t], layer_after[t]) <= 1e-9, t
+    # both directions: the map does move non-scalar features (l = 1 is not invariant)
+    t = (1, -1)
+    assert rel(before[-1][t], after[-1][t]) > 1e-2
+
+
+def test_full_parity_builds_pseudo_quantities_and_even_parity_does_not():
+    # reference: DESIGN.md parity rule; a pseudo-scalar flips sign under a reflection (checked above)
+    full = make()
+    assert full.symmetry == "SE3"
+    assert (0, -1) in full.types_out and (1, 1) in full.types_out  # pseudo-scalar, pseudovector
+    even = make(parity="even")
+    assert even.symmetry == "E3"
+    assert all(p == proper_parity(l) for l, p in even.types_out)
+    # in "even" mode every path couples proper to proper: l_in + l_f + l_out is even
+    for l_in in range(3):
+        assert all((l_in + l_f + l_out) % 2 == 0 for l_f, l_out in angular_pairs(l_in, [0, 1, 2], "even"))
+    # 1 x 1 -> 1 from a vector (the cross product) is a pseudovector
+    paths = layer_paths({(1, -1): 4}, [0, 1, 2], "full")
+    assert [(p.l_f, p.t_out) for p in paths if p.t_out[0] == 1 and p.l_f == 1] == [(1, (1, 1))]
+
+
+def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
+    # reference: FACTS.md helix handedness (a helix is chiral); DESIGN.md parity rule
+    cloud = helix_cloud()
+    mirror = rotate(cloud, reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64)))
+    turned = rotate(mirror, random_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64))
+    full, even = make(), make(parity="even")
+    assert rel(full(cloud), full(mirror)) > 1e-3
+    assert rel(full(cloud), full(turned)) > 1e-3
+    assert rel(even(cloud), even(mirror)) <= 1e-9
+    assert rel(even(cloud), even(turned)) <= 1e-9
+
+
+# -- fast path against the dense reference ----------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    "options",
+    [
+        {},
+        {"parity": "even", "heads": 1},
+        {"l_max": 3, "channels": {0: 4, 1: 2, 2: 2, 3: 2}, "layers": 2},
+        {"l_max": 2, "channels": {0: 4, 2: 2}, "radius": 0.9, "cutoff": 0.9},  # a missing degree; radius graph
+    ],
+    ids=["default", "even", "l3", "radius"],
+)
+def test_fast_path_equals_dense_reference_with_gradients(options):
+    # reference: the dense per-edge kernel implementation in the same module (explicit W(r_ij))
+    net = make(**options)
+    points = random_cloud(b=2, n=24, seed=3).requires_grad_(True)
+    mask = torch.ones(2, 24, dtype=torch.bool)
+    mask[1, -4:] = False
+    weights = torch.randn(net.out_features, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
+    results = []
+    for reference in (False, True):
+        net.zero_grad()
+        points.grad = None
+        out = net(points, mask, reference=reference)
+        (out * weights).sum().backward()
+        grads = [p.grad.clone() for p in net.parameters()] + [points.grad.clone()]
+        results.append((out.detach(), grads))
+    (fast, fast_grads), (ref, ref_grads) = results
+    assert (fast - ref).abs().max() <= 1e-10 * ref.abs().max()
+    for a, b in zip(fast_grads, ref_grads):
+        assert (a - b).abs().max() <= 1e-10 * max(float(b.abs().max()), 1.0)
+    assert max(float(g.abs().max()) for g in ref_grads) > 0
+
+
+# -- masks and numerics -----------------------------------------------------------------------
+
+
+def test_padding_changes_nothing_for_the_real_points():
+    # reference: DESIGN.md mask convention (True = real point)
+    net = make()
+    cloud = random_cloud(b=2, n=40)
+    junk = torch.cat([torch.full((2, 6, 3), 1e3, dtype=torch.float64), torch.zeros(2, 6, 3, dtype=torch.float64)], 1)
+    padded = torch.cat([cloud, junk], 1)
+    mask = torch.cat([torch.ones(2, 40, dtype=torch.bool), torch.zeros(2, 12, dtype=torch.bool)], 1)
+    assert rel(net(cloud), net(padded, mask)) <= 1e-12
+    for plain, pad in zip(net.forward_features(cloud), net.forward_features(padded, mask)):
+        for t in plain:
+            assert rel(plain[t], pad[t][:, :40]) <= 1e-12
+    # the masked slots would matter if they were real points
+    assert rel(net(cloud), net(padded)) > 1e-3
+
+
+def test_masked_softmax_is_stable_and_empty_neighbourhoods_give_zeros():
+    # reference: softmax is invariant to a shift of its inputs (closed form); torch.softmax on valid entries
+    logits = torch.tensor([[1e4, 1e4 + 1.0, -3.0], [0.5, 2.0, 7.0], [1.0, 2.0, 3.0]], dtype=torch.float64,
+                          requires_grad=True)
+    valid = torch.tensor([[True, True, False], [False, False, False], [True, False, True]])
+    a = masked_softmax(logits, valid, dim=-1)
+    e = math.exp(1.0)
+    torch.testing.assert_close(a[0], torch.tensor([1 / (1 + e), e / (1 + e), 0.0], dtype=torch.float64))
+    assert a[1].abs().max() == 0.0
+    torch.testing.assert_close(a[2, [0, 2]], torch.softmax(torch.tensor([1.0, 3.0], dtype=torch.float64), 0))
+    a.square().sum().backward()
+    assert torch.isfinite(logits.grad).all()
+
+
+def test_duplicate_points_stay_finite():
+    # reference: shapes.geometry harmonics are finite at zero vectors; a coincident neighbour has r = 0
+    net = make()
+    cloud = random_cloud(n=40)
+    cloud = torch.cat([cloud, cloud[:, :5]], 1).requires_grad_(True)
+    out = net(cloud)
+    out.sum().backward()
+    assert torch.isfinite(out).all() and torch.isfinite(cloud.grad).all()
+
+
+def test_every_parameter_of_the_default_network_gets_a_gradient():
+    # reference: common practice; an unused parameter would point to a path with no effect
+    net = make().train()
+    net(random_cloud(b=2, n=32)).square().sum().backward()
+    assert [n for n, p in net.named_parameters() if p.grad is None or float(p.grad.abs().max()) == 0.0] == []
+
+
+# -- options --------------------------------------------------------------------------------
+
+
+def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
+    # reference: YAML/Hydra deliver mapping keys as strings or ints (DESIGN.md: no mini-language)
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
+
+    net = HarmonicAttentionBackbone(channels={"0": 16, "1": 8, "2": 4})
+    assert net.config.channels == {0: 16, 1: 8, 2: 4}
+    conf = OmegaConf.load("conf/backbone/harmonic_attention.yaml")
+    built = instantiate(conf)
+    assert isinstance(built, HarmonicAttentionBackbone)
+    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff"):
+        assert getattr(built.config, key) == conf[key]
+    assert built.config.channels == {int(k): v for k, v in conf.channels.items()}
+
+
+@pytest.mark.parametrize(
+    "options,match",
+    [
+        ({"l_max": 4}, r"l_max should be in 0\.\.3, got 4"),
+        ({"l_max": -1}, r"l_max should be an integer >= 0, got -1"),
+        ({"channels": {1: 8, 2: 4}}, r"degree 0"),
+        ({"channels": {0: 8, 1: 4, 2: 2, 3: 2}}, r"has degree 3, expected degrees 0\.\.l_max = 0\.\.2"),
+        ({"channels": {0: 8, 1: 0, 2: 4}}, r"channels\[1\] should be a positive channel count, got 0"),
+        ({"channels": {0: 8, 1: 2.5, 2: 4}}, r"should be an integer, got 2\.5"),
+        ({"channels": "0:16,1:8"}, r"should be a mapping"),
+        ({"l_max": 3}, r"degree 3 \(l_max = 3\)"),
+        ({"heads": 3}, r"heads = 3 should divide every channel count"),
+        ({"parity": "odd"}, r"parity should be one of \['full', 'even'\], got 'odd'"),
+        ({"layers": 1}, r"parity 'full' needs l_max >= 1 and layers >= 2"),
+        ({"cutoff": 0.0}, r"cutoff should be a positive number"),
+        ({"radius": -1.0}, r"radius should be a positive number"),
+    ],
+)
+def test_bad_options_raise_config_errors(options, match):
+    with pytest.raises(ConfigError, match=match):
+        HarmonicAttentionBackbone(**options)
+
+
+def test_too_small_cloud_for_k_raises_input_error():
+    net = make(k=16)
+    with pytest.raises(InputError, match=r"k = 16 neighbours needs clouds of at least 17 points, got 12"):
+        net(random_cloud(n=12))
+    # the smallest real cloud of a padded batch decides
+    mask = torch.ones(2, 20, dtype=torch.bool)
+    mask[0, 12:] = False
+    with pytest.raises(InputError, match="got 12"):
+        net(random_cloud(b=2, n=20), mask)
