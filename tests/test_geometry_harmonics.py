@@ -178,3 +178,18 @@ def test_equivariance_with_wigner_d():
             assert (moved - spherical_harmonics(l, v)[l] @ D[i].T).abs().max() < 1e-12
             if l >= 1:  # and the harmonics do change: the check can fail
                 assert (moved - spherical_harmonics(l, v)[l]).abs().max() > 1e-2
+
+
+def test_blocked_and_autograd_paths_agree():
+    # More vectors than one block (65536), so block boundaries are crossed; batched leading shape.
+    v = torch.randn(3, 25_000, 3, generator=torch_generator(8), dtype=torch.float64)
+    v[0, 0] = 0.0
+    plain = spherical_harmonics(4, v)
+    with_grad = spherical_harmonics(4, v.clone().requires_grad_(True))
+    for a, b in zip(plain, with_grad):
+        assert a.shape == b.shape and a.is_contiguous()
+        assert (a - b.detach()).abs().max() < 1e-14
+    # reference: scipy.special.sph_harm_y on a sample across the block boundary
+    flat = v.reshape(-1, 3)[65_530:65_545].numpy()
+    assert np.abs(spherical_harmonics(4, torch.from_numpy(flat))[4].numpy() - real_reference(4, flat)).max() < 1e-12
+    assert np.abs(plain[4].reshape(-1, 9)[65_530:65_545].numpy() - real_reference(4, flat)).max() < 1e-12

@@ -102,6 +102,46 @@ def spherical_harmonics(l_max: int, vectors: torch.Tensor, normalize: bool = Tru
     if not vectors.is_floating_point():
         raise InputError(f"vectors should be float32 or float64, got {vectors.dtype} instead.")
 
+    shape = vectors.shape[:-1]
+    flat = vectors.reshape(-1, 3)  # (n, 3)
+    if torch.is_grad_enabled() and vectors.requires_grad:
+        # Autograd path: build each degree with one stack (differentiable, more memory).
+        x, y, z, r2 = _prepare(flat, normalize)
+        parts = _components(l_max, x, y, z, r2)
+        out = [
+            torch.stack([_alone(p, x) if t is None else p * t for p, t in ps], -1)
+            for ps in parts
+        ]
+    else:
+        # No-grad path: blocks of vectors written into preallocated outputs, so intermediates
+        # stay cache-sized (about 2x faster at l_max = 6 and far less peak memory).
+        n = flat.shape[0]
+        out = [flat.new_empty((n, 2 * l + 1)) for l in range(l_max + 1)]
+        for begin in range(0, n, _BLOCK):
+            x, y, z, r2 = _prepare(flat[begin : begin + _BLOCK], normalize)
+            for l, ps in enumerate(_components(l_max, x, y, z, r2)):
+                block = out[l][begin : begin + _BLOCK]
+                for col, (p, t) in enumerate(ps):
+                    if t is None and isinstance(p, float):
+                        block[:, col].fill_(p)
+                    elif t is None:
+                        block[:, col].copy_(p)
+                    else:
+                        torch.mul(t, p, out=block[:, col])
+    return [o.reshape(shape + (o.shape[-1],)) for o in out]  # (..., 2l+1)
+
+
+# Vectors per block on the no-grad path: intermediates of 64K floats fit in L2 cache.
+_BLOCK = 1 << 16
+
+
+def _alone(p, like: torch.Tensor) -> torch.Tensor:
+    """An m = 0 component as a tensor (``Y_00`` is a float constant)."""
+    return torch.full_like(like, p) if isinstance(p, float) else p
+
+
+def _prepare(vectors: torch.Tensor, normalize: bool):
+    """Coordinates ``x, y, z (n,)`` and ``r^2 (n,)`` fed to the polynomial recurrences."""
     if normalize:
         sq = (vectors * vectors).sum(-1, keepdim=True)
         nonzero = sq > torch.finfo(vectors.dtype).tiny
@@ -115,28 +155,38 @@ def spherical_harmonics(l_max: int, vectors: torch.Tensor, normalize: bool = Tru
     else:
         x, y, z = vectors.unbind(-1)
         r2 = x * x + y * y + z * z
+    return x, y, z, r2
 
+
+def _components(l_max: int, x, y, z, r2) -> list[list]:
+    """Per degree, the ``2l + 1`` components as factor pairs ``(p, t)``, component ``= p * t``.
+
+    ``p`` is ``Pbar_l^|m|`` (a float when it is constant), ``t`` is ``S_|m|``, ``C_m``, or None for
+    ``m = 0`` (then the component is ``p`` itself). ``sqrt(2)`` is folded into the starting values
+    for ``m > 0``, so each component costs one product, written straight into the output.
+    """
     co = _coefficients(l_max)
     sqrt2 = math.sqrt(2.0)
-    # Pbar[l][m] for 0 <= m <= l, each of shape (...).
-    pbar: list[list[torch.Tensor]] = [[None] * (l + 1) for l in range(l_max + 1)]
-    # cos_m[m] + i sin_m[m] = (x + i y)^m.
-    cos_m = [torch.ones_like(x)]
-    sin_m = [torch.zeros_like(x)]
-    for m in range(1, l_max + 1):
+    # cos_m[m] + i sin_m[m] = (x + i y)^m, m >= 1.
+    cos_m, sin_m = [None, x], [None, y]
+    for m in range(2, l_max + 1):
         cos_m.append(x * cos_m[m - 1] - y * sin_m[m - 1])
         sin_m.append(x * sin_m[m - 1] + y * cos_m[m - 1])
+    # pbar[l][m] for 0 <= m <= l: a float for l == m (a constant), a tensor otherwise.
+    pbar: list[list] = [[None] * (l + 1) for l in range(l_max + 1)]
     for m in range(l_max + 1):
-        pbar[m][m] = torch.full_like(x, co["start"][m])
+        first = co["start"][m] * (sqrt2 if m else 1.0)
+        pbar[m][m] = first
         if m + 1 <= l_max:
-            pbar[m + 1][m] = co["lift"][m] * z * pbar[m][m]
+            pbar[m + 1][m] = (co["lift"][m] * first) * z
         for l in range(m + 2, l_max + 1):
-            pbar[l][m] = co["a"][l, m] * z * pbar[l - 1][m] - co["b"][l, m] * r2 * pbar[l - 2][m]
-
-    out = []
+            older = pbar[l - 2][m]
+            older = (co["b"][l, m] * older) * r2 if l - 2 == m else co["b"][l, m] * r2 * older
+            pbar[l][m] = co["a"][l, m] * z * pbar[l - 1][m] - older
+    parts = []
     for l in range(l_max + 1):
-        parts = [sqrt2 * pbar[l][-m] * sin_m[-m] for m in range(-l, 0)]
-        parts.append(pbar[l][0])
-        parts += [sqrt2 * pbar[l][m] * cos_m[m] for m in range(1, l + 1)]
-        out.append(torch.stack(parts, -1))  # (..., 2l+1)
-    return out
+        ps = [(pbar[l][-m], sin_m[-m]) for m in range(-l, 0)]
+        ps.append((pbar[l][0], None))
+        ps += [(pbar[l][m], cos_m[m]) for m in range(1, l + 1)]
+        parts.append(ps)
+    return parts
