@@ -53,16 +53,17 @@ def _check_points(points, mask) -> torch.Tensor:
     return mask.to(device=points.device, dtype=torch.bool)
 
 
-def _sq_distances(receivers: torch.Tensor, senders: torch.Tensor) -> torch.Tensor:
-    """Squared distances ``(B, c, N)`` summed coordinate by coordinate.
+def _sq_distances(cols: torch.Tensor, start: int, stop: int) -> torch.Tensor:
+    """Squared distances ``(B, c, N)`` from receivers ``start:stop`` to every point.
 
+    ``cols (B, 3, N)`` holds the coordinates axis-major, so every operand row is contiguous.
     Exact differences rather than ``|a|^2 + |b|^2 - 2 a.b``: symmetric, never negative, exactly 0
     for duplicate points, and only two ``(B, c, N)`` buffers alive at once.
     """
-    d = torch.sub(receivers[:, :, None, 0], senders[:, None, :, 0]).square_()  # (B, c, N)
+    d = torch.sub(cols[:, 0, start:stop, None], cols[:, 0, None, :]).square_()  # (B, c, N)
     tmp = torch.empty_like(d)
     for axis in (1, 2):
-        torch.sub(receivers[:, :, None, axis], senders[:, None, :, axis], out=tmp)
+        torch.sub(cols[:, axis, start:stop, None], cols[:, axis, None, :], out=tmp)
         d.addcmul_(tmp, tmp)
     return d
 
@@ -70,18 +71,22 @@ def _sq_distances(receivers: torch.Tensor, senders: torch.Tensor) -> torch.Tenso
 def _smallest_k(d: torch.Tensor, k: int) -> tuple[torch.Tensor, torch.Tensor]:
     """The ``k`` smallest entries of each row of ``d (..., N)``, ordered by (value, index).
 
-    ``topk`` is fast but leaves the order among equal values unspecified; rows whose selection
-    is ambiguous (a finite tie at the k-th value) are redone with a stable sort, and the chosen k
-    are then ordered by value with ties by index. Deterministic for any input.
+    ``topk`` is fast but leaves the order among equal values unspecified. Taking one extra entry
+    shows whether the k-th value is tied with an entry left out; such rows (finite ties only) are
+    redone with a stable sort. The chosen k are then ordered by value with ties by index.
+    Deterministic for any input.
     """
-    vals, idx = torch.topk(d, k, dim=-1, largest=False, sorted=True)
-    kth = vals[..., -1:]
-    ambiguous = ((d == kth).sum(-1) > (vals == kth).sum(-1)) & torch.isfinite(kth.squeeze(-1))
-    if ambiguous.any():
-        rows = ambiguous.nonzero(as_tuple=True)
-        order = torch.sort(d[rows], dim=-1, stable=True).indices[..., :k]
-        idx[rows] = order
-        vals[rows] = torch.gather(d[rows], -1, order)
+    n = d.shape[-1]
+    extra = 1 if k < n else 0
+    vals, idx = torch.topk(d, k + extra, dim=-1, largest=False, sorted=True)
+    if extra:
+        ambiguous = (vals[..., k - 1] == vals[..., k]) & torch.isfinite(vals[..., k - 1])
+        vals, idx = vals[..., :k], idx[..., :k]
+        if ambiguous.any():
+            rows = ambiguous.nonzero(as_tuple=True)
+            order = torch.sort(d[rows], dim=-1, stable=True).indices[..., :k]
+            idx[rows] = order
+            vals[rows] = torch.gather(d[rows], -1, order)
     # Order equal values by index: stable sort by index, then stable sort by value. Only needed
     # when a finite value repeats (infinite slots are dropped by the caller), so usually skipped.
     repeats = (vals[..., 1:] == vals[..., :-1]) & torch.isfinite(vals[..., 1:])
@@ -113,11 +118,11 @@ def _graph(points, k, mask, include_self, chunk_size, radius) -> Neighbours:
     rows_per_block = max(1, min(chunk_size, _BLOCK_ELEMENTS // max(1, B * N)))
     all_real = bool(mask.all())
     with torch.no_grad():
-        pts = points.detach()
+        cols = points.detach().transpose(1, 2).contiguous()  # (B, 3, N)
         not_sender = ~mask[:, None, :]  # (B, 1, N)
         for start in range(0, N, rows_per_block):
             stop = min(start + rows_per_block, N)
-            d = _sq_distances(pts[:, start:stop], pts)  # (B, c, N)
+            d = _sq_distances(cols, start, stop)  # (B, c, N)
             if not all_real:
                 d.masked_fill_(not_sender, math.inf)
             if not include_self:
