@@ -1,6 +1,5 @@
 """Real Wigner-D matrices: homomorphism, consistency with the harmonics, and sympy's complex D."""
 
-import math
 
 import numpy as np
 import pytest
