@@ -1,0 +1,304 @@
+"""Part generators: dimensions against published standards, closed solids, closed-form volumes,
+helix handedness, bad parameters. Twin detection is in test_parts_twins.py, the written catalog
+in test_parts_catalog.py."""
+
+from __future__ import annotations
+
+import io
+import math
+
+import numpy as np
+import pytest
+import trimesh
+
+from shapes.errors import ConfigError, InputError, ShapesError
+from shapes.parts import FAMILIES, HANDED_FAMILIES, build_part, mirror_mesh
+from shapes.parts._ply import ply_bytes
+
+SQRT3 = math.sqrt(3.0)
+
+
+def radius_xy(mesh: trimesh.Trimesh) -> np.ndarray:
+    return np.linalg.norm(mesh.vertices[:, :2], axis=1)
+
+
+def polygon_factor(n: int) -> float:
+    """Area of a regular n-gon inscribed in a unit circle over the circle's area: sin(2 pi/n) n / (2 pi)."""
+    # reference: area of a regular polygon, (n/2) r^2 sin(2 pi / n)
+    return n * math.sin(2.0 * math.pi / n) / (2.0 * math.pi)
+
+
+def helicity(mesh: trimesh.Trimesh) -> float:
+    """Area-weighted mean of n_theta * n_z over the surface, a pseudo-scalar.
+
+    For a surface swept along a right-hand helix (r cos t, r sin t, p t / 2 pi) the tangent has
+    positive azimuthal and axial parts, and normals are perpendicular to it, so n_theta n_z <= 0.
+    A mirror x -> -x flips n_theta, so the sign flips; a part with a mirror plane gives 0.
+    """
+    c = mesh.triangles_center
+    n = mesh.face_normals
+    theta_hat = np.stack([-c[:, 1], c[:, 0], np.zeros(len(c))], axis=1)
+    theta_hat /= np.linalg.norm(theta_hat, axis=1, keepdims=True) + 1e-12
+    n_theta = (n * theta_hat).sum(1)
+    return float((mesh.area_faces * n_theta * n[:, 2]).sum() / mesh.area)
+
+
+# ---------------------------------------------------------------- every family is one closed solid
+
+
+@pytest.mark.parametrize("family", sorted(FAMILIES))
+def test_default_part_is_one_closed_solid(family):
+    mesh = build_part(family)
+    # reference: trimesh's own watertight / winding / volume checks
+    assert mesh.is_watertight and mesh.is_winding_consistent
+    assert mesh.volume > 0 and mesh.body_count == 1
+    # the bytes we write read back as the same closed solid through a standard PLY reader
+    back = trimesh.load(io.BytesIO(ply_bytes(mesh)), file_type="ply", process=True)
+    assert back.is_watertight and back.is_winding_consistent
+    assert back.volume == pytest.approx(mesh.volume, rel=1e-6)
+    assert len(back.faces) == len(mesh.faces)
+
+
+@pytest.mark.parametrize("family", sorted(HANDED_FAMILIES))
+def test_left_hand_is_exact_mirror_with_outward_winding(family):
+    right = build_part(family, hand="right")
+    left = build_part(family, hand="left")
+    # the mirror x -> -x applied to every vertex, same index order
+    np.testing.assert_array_equal(left.vertices, right.vertices * np.array([-1.0, 1.0, 1.0]))
+    np.testing.assert_array_equal(left.faces, right.faces[:, ::-1])
+    assert left.volume == pytest.approx(right.volume, rel=1e-12) and left.volume > 0
+    assert left.is_winding_consistent and left.is_watertight
+
+
+def test_mirror_mesh_of_mirror_is_identity_and_keeps_volume():
+    mesh = build_part("angle_bracket")
+    twice = mirror_mesh(mirror_mesh(mesh))
+    np.testing.assert_array_equal(twice.vertices, mesh.vertices)
+    np.testing.assert_array_equal(twice.faces, mesh.faces)
+    assert mirror_mesh(mesh).volume == pytest.approx(mesh.volume)
+
+
+def test_same_parameters_give_identical_bytes():
+    params = {"size": "M8", "length": 40.0, "thread_length": 12.0}
+    assert ply_bytes(build_part("threaded_stud", **params)) == ply_bytes(build_part("threaded_stud", **params))
+
+
+# ---------------------------------------------------------------- ISO 4032 hex nuts
+
+NUTS = [  # source: ISO 4032 (FACTS.md): s across flats, m height, e_min across corners; ISO 261 pitch
+    ("M6", 10.0, 5.2, 11.05, 6.0, 1.0),
+    ("M8", 13.0, 6.8, 14.38, 8.0, 1.25),
+    ("M10", 16.0, 8.4, 17.77, 10.0, 1.5),
+]
+
+
+@pytest.mark.parametrize("size,s,m,e_min,d,pitch", NUTS)
+def test_hex_nut_dimensions(size, s, m, e_min, d, pitch):
+    mesh = build_part("hex_nut", size=size, chamfer="both")
+    v = mesh.vertices
+    for k in range(3):  # extent along each of the three flat normals (0, 60, 120 degrees)
+        normal = np.array([math.cos(math.radians(60 * k)), math.sin(math.radians(60 * k)), 0.0])
+        assert np.ptp(v @ normal) == pytest.approx(s, abs=1e-4)
+    assert np.ptp(v[:, 2]) == pytest.approx(m, abs=1e-4)
+    assert 2.0 * radius_xy(mesh).max() >= e_min  # across corners
+    # source: ISO 68-1, D1 = D - 2 * 5H/8 with H = (sqrt 3 / 2) P: the plain bore is the minor diameter
+    d1 = d - 2.0 * 5.0 / 8.0 * SQRT3 / 2.0 * pitch
+    assert 2.0 * radius_xy(mesh).min() == pytest.approx(d1, abs=1e-4)
+
+
+@pytest.mark.parametrize("segments", [24, 48, 96])
+def test_hex_nut_volume_is_hexagon_minus_bore(segments):
+    mesh = build_part("hex_nut", size="M8", chamfer="none", segments=segments)
+    s, m, d1 = 13.0, 6.8, 8.0 - 1.25 * 5.0 / 8.0 * SQRT3  # source: ISO 4032 M8; ISO 68-1 D1
+    hexagon = SQRT3 / 2.0 * s**2  # reference: regular hexagon area from across-flats s
+    circle = math.pi * d1**2 / 4.0
+    exact_circle = (hexagon - circle) * m
+    # The bore is an inscribed n-gon: it removes less than the circle by (1 - polygon_factor) of
+    # its area, so the solid is larger than the circular closed form by exactly that much.
+    facet = circle * (1.0 - polygon_factor(segments)) * m
+    assert mesh.volume == pytest.approx(exact_circle + facet, rel=1e-5)
+    assert abs(mesh.volume - exact_circle) <= facet * 1.001
+    chamfered = build_part("hex_nut", size="M8", chamfer="both", segments=segments)
+    assert 0.9 * mesh.volume < chamfered.volume < mesh.volume  # chamfers only remove corners
+
+
+# ---------------------------------------------------------------- ISO 7089 washers, bushings
+
+WASHERS = [  # source: ISO 7089 (FACTS.md): d1 / d2 / h
+    ("M6", 6.4, 12.0, 1.6),
+    ("M8", 8.4, 16.0, 1.6),
+    ("M10", 10.5, 20.0, 2.0),
+]
+
+
+@pytest.mark.parametrize("size,d1,d2,h", WASHERS)
+@pytest.mark.parametrize("segments", [32, 96])
+def test_washer_dimensions_and_volume(size, d1, d2, h, segments):
+    mesh = build_part("plain_washer", size=size, segments=segments)
+    r = radius_xy(mesh)
+    assert 2.0 * r.min() == pytest.approx(d1, abs=1e-4)
+    assert 2.0 * r.max() == pytest.approx(d2, abs=1e-4)
+    assert np.ptp(mesh.vertices[:, 2]) == pytest.approx(h, abs=1e-5)
+    closed = math.pi / 4.0 * (d2**2 - d1**2) * h  # reference: annulus volume
+    # vertices sit on the circles, so faceting loses exactly (1 - polygon_factor) of the area
+    deficit = 1.0 - polygon_factor(segments)
+    assert mesh.volume == pytest.approx(closed * (1.0 - deficit), rel=1e-5)
+    assert closed * (1.0 - 1.001 * deficit) <= mesh.volume <= closed
+
+
+def test_bushing_volume_plain_and_flanged():
+    n = 64
+    plain = build_part("bushing", outer_d=16.0, inner_d=10.0, length=20.0, segments=n)
+    closed = math.pi / 4.0 * (16.0**2 - 10.0**2) * 20.0  # reference: tube volume
+    assert plain.volume == pytest.approx(closed * polygon_factor(n), rel=1e-5)
+    flanged = build_part("bushing", outer_d=16.0, inner_d=10.0, length=20.0, flange_d=24.0, flange_t=3.0, segments=n)
+    collar = math.pi / 4.0 * (24.0**2 - 16.0**2) * 3.0  # reference: annulus volume of the collar
+    assert flanged.volume == pytest.approx((closed + collar) * polygon_factor(n), rel=1e-5)
+
+
+# ---------------------------------------------------------------- ISO 15 bearings
+
+BEARINGS = [  # source: ISO 15 (FACTS.md): bore / OD / width
+    ("6000", 10.0, 26.0, 8.0),
+    ("6001", 12.0, 28.0, 8.0),
+    ("6202", 15.0, 35.0, 11.0),
+    ("6203", 17.0, 40.0, 12.0),
+    ("6205", 25.0, 52.0, 15.0),
+]
+
+
+@pytest.mark.parametrize("designation,d,D,B", BEARINGS)
+@pytest.mark.parametrize("sealed", [False, True])
+def test_bearing_boundary_dimensions(designation, d, D, B, sealed):
+    mesh = build_part("ball_bearing", designation=designation, sealed=sealed)
+    r = radius_xy(mesh)
+    assert 2.0 * r.min() == pytest.approx(d, abs=1e-4)
+    assert 2.0 * r.max() == pytest.approx(D, abs=1e-4)
+    assert np.ptp(mesh.vertices[:, 2]) == pytest.approx(B, abs=1e-4)
+    assert mesh.body_count == 1  # balls fused into the rings: one solid
+
+
+# ---------------------------------------------------------------- ISO 53 / 54 gears
+
+
+def _inv(a):
+    return math.tan(a) - a  # reference: involute function inv(alpha) = tan(alpha) - alpha
+
+
+@pytest.mark.parametrize("module,teeth", [(1.0, 23), (1.5, 30), (2.0, 18), (3.0, 40)])
+def test_spur_gear_tip_root_teeth_and_involute(module, teeth):
+    width = 10.0
+    mesh = build_part("spur_gear", module=module, teeth=teeth, face_width=width, bore_d=0.3 * module * teeth)
+    d = module * teeth
+    r = radius_xy(mesh)
+    # source: ISO 53 basic rack: tip d + 2m, root d - 2.5m
+    assert 2.0 * r.max() == pytest.approx(d + 2.0 * module, abs=1e-4)
+    outline = r > 0.3 * d / 2.0 + 1e-3
+    assert 2.0 * r[outline].min() == pytest.approx(d - 2.5 * module, abs=1e-4)
+    # tooth count: maxima of the radius profile around the top face
+    top = mesh.vertices[(np.abs(mesh.vertices[:, 2] - width) < 1e-6) & (r > d / 2.0 + 0.5 * module)]
+    ang = np.sort(np.arctan2(top[:, 1], top[:, 0]))
+    gaps = np.diff(np.concatenate([ang, [ang[0] + 2.0 * math.pi]]))
+    assert int((gaps > math.pi / teeth).sum()) == teeth
+    # flank points lie on the involute: half tooth angle psi(r) = pi/(2z) + inv(20 deg) - inv(acos(rb/r))
+    alpha = math.radians(20.0)  # source: ISO 53 pressure angle
+    rb = d / 2.0 * math.cos(alpha)
+    pts = mesh.vertices[(r > rb + 1e-3) & (r < d / 2.0 + module - 1e-3) & (np.abs(mesh.vertices[:, 2]) < 1e-6)]
+    rr = np.linalg.norm(pts[:, :2], axis=1)
+    phi = np.arctan2(pts[:, 1], pts[:, 0])
+    rel = np.abs((phi + math.pi / teeth) % (2.0 * math.pi / teeth) - math.pi / teeth)  # angle from tooth centre
+    expect = math.pi / (2.0 * teeth) + _inv(alpha) - np.array([_inv(math.acos(rb / x)) for x in rr])
+    assert len(pts) >= 4 * teeth
+    np.testing.assert_allclose(rel, expect, atol=1e-5)
+    # tooth thickness at the pitch circle is half the circular pitch: 2 psi(d/2) r = pi m / 2
+    assert 2.0 * (math.pi / (2.0 * teeth)) * d / 2.0 == pytest.approx(math.pi * module / 2.0)
+
+
+@pytest.mark.parametrize("hand,sign", [("right", 1.0), ("left", -1.0)])
+def test_helical_gear_tip_diameter_and_hand(hand, sign):
+    m_n, z, beta, width = 1.5, 24, 20.0, 12.0
+    mesh = build_part("helical_gear", module=m_n, teeth=z, helix_deg=beta, face_width=width, bore_d=10.0, hand=hand)
+    d = z * m_n / math.cos(math.radians(beta))  # transverse pitch diameter (ISO 53 rack in the normal plane)
+    r = radius_xy(mesh)
+    assert 2.0 * r.max() == pytest.approx(d + 2.0 * m_n, abs=1e-3)
+    # teeth turn counter-clockwise going up for a right-hand gear (FACTS.md helix convention):
+    # tip points at the top face are the bottom ones turned by width * tan(beta) / r_pitch
+    tips = r > d / 2.0 + 0.9 * m_n
+    v = mesh.vertices[tips]
+    bottom, top = v[np.abs(v[:, 2]) < 1e-6], v[np.abs(v[:, 2] - width) < 1e-6]
+    twist = width * math.tan(math.radians(beta)) / (d / 2.0)
+    a_b = np.arctan2(bottom[:, 1], bottom[:, 0])
+    a_t = np.arctan2(top[:, 1], top[:, 0])
+    turned = np.angle(np.exp(1j * (a_b + sign * twist))[:, None] / np.exp(1j * a_t)[None, :])
+    assert np.abs(turned).min(axis=1).max() < 2e-4  # every bottom tip lands on a top tip
+    assert np.sign(helicity(mesh)) == -sign
+
+
+# ---------------------------------------------------------------- ISO 68-1 / ISO 261 threads
+
+
+@pytest.mark.parametrize("size,d,pitch", [("M6", 6.0, 1.0), ("M8", 8.0, 1.25), ("M10", 10.0, 1.5)])
+def test_thread_pitch_depth_and_hand(size, d, pitch):
+    b = 10.0
+    right = build_part("threaded_stud", size=size, length=40.0, thread_length=b, hand="right")
+    left = build_part("threaded_stud", size=size, length=40.0, thread_length=b, hand="left")
+    h = SQRT3 / 2.0 * pitch  # source: ISO 68-1, H = (sqrt 3 / 2) P
+    for mesh, sign in ((right, 1.0), (left, -1.0)):
+        v = mesh.vertices
+        r = radius_xy(mesh)
+        inner = (v[:, 2] > pitch) & (v[:, 2] < b - pitch)  # threaded zone, away from chamfer and shank
+        assert r[inner].max() == pytest.approx(d / 2.0, abs=1e-4)  # major diameter
+        assert r[inner].min() == pytest.approx(d / 2.0 - 5.0 / 8.0 * h, abs=1e-4)  # depth 5H/8
+        for deg in (0.0, 90.0, 180.0, 270.0):
+            a = math.radians(deg)
+            on_plane = inner & (np.abs(v[:, 0] * math.sin(a) - v[:, 1] * math.cos(a)) < 1e-4)
+            on_plane &= (v[:, 0] * math.cos(a) + v[:, 1] * math.sin(a)) > 0
+            crest = np.sort(v[on_plane & (r > d / 2.0 - 1e-4), 2])
+            # crest flat of width P/8 centred where z = P theta / 2 pi (right hand); the mirror
+            # x -> -x sends theta to pi - theta, so the left-hand crest is at z = P/2 - P theta / 2 pi
+            centre = pitch * a / (2.0 * math.pi) if sign > 0 else pitch / 2.0 - pitch * a / (2.0 * math.pi)
+            offset = np.mod(crest - centre + pitch / 2.0, pitch) - pitch / 2.0
+            np.testing.assert_allclose(np.abs(offset), pitch / 16.0, atol=2e-4)
+            starts = crest[offset < 0]
+            assert len(starts) >= 3
+            np.testing.assert_allclose(np.diff(starts), pitch, atol=2e-4)  # source: ISO 261 coarse pitch
+        assert np.sign(helicity(mesh)) == -sign
+
+
+def test_spring_hand_and_size():
+    right = build_part("compression_spring", wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, hand="right")
+    left = build_part("compression_spring", wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, hand="left")
+    assert 2.0 * radius_xy(right).max() == pytest.approx(12.0 + 1.6, abs=0.01)  # outer diameter D + d
+    assert 2.0 * radius_xy(right).min() == pytest.approx(12.0 - 1.6, abs=0.05)  # inner diameter D - d
+    assert right.vertices[:, 2].min() == pytest.approx(0.0, abs=1e-6)  # ground end sits on z = 0
+    assert helicity(right) < -0.01 and helicity(left) > 0.01  # FACTS.md: right hand turns CCW rising
+    for family in ("spur_gear", "hex_nut", "v_pulley", "bolted_flange"):  # achiral parts: no helicity
+        assert abs(helicity(build_part(family))) < 1e-3
+
+
+# ---------------------------------------------------------------- bad parameters
+
+
+@pytest.mark.parametrize(
+    "family,params,error,words",
+    [
+        ("no_such_part", {}, ConfigError, ["unknown part family", "'no_such_part'", "hex_nut"]),
+        ("hex_nut", {"size": "M7"}, ConfigError, ["size", "'M7'", "M6, M8, M10"]),
+        ("ball_bearing", {"designation": "6999"}, ConfigError, ["designation", "'6999'", "6205"]),
+        ("spur_gear", {"module": 1.1}, ConfigError, ["module", "1.1", "1.25"]),
+        ("compression_spring", {"wire_d": -1.0}, InputError, ["wire_d", "> 0", "-1"]),
+        ("bushing", {"outer_d": 10.0, "inner_d": 12.0}, InputError, ["inner_d", "outer_d", "12"]),
+        ("threaded_stud", {"hand": "up"}, ConfigError, ["hand", "'up'", "right, left"]),
+        ("threaded_stud", {"length": 10.0, "thread_length": 8.0}, InputError, ["length", "10"]),
+        ("angle_bracket", {"leg_base": 40.0, "leg_upright": 40.0}, InputError, ["legs", "differ", "40"]),
+        ("bolted_flange", {"holes": 2}, InputError, ["holes", "[3, 16]", "2"]),
+        ("hex_nut", {"diameter": 8}, InputError, ["unknown parameter", "diameter", "size"]),
+        ("compression_spring", {"pitch": 1.0, "wire_d": 1.6}, InputError, ["pitch", "1.15", "1"]),
+    ],
+)
+def test_bad_parameters_raise_with_expected_and_found(family, params, error, words):
+    with pytest.raises(error) as info:
+        build_part(family, **params)
+    assert isinstance(info.value, ShapesError)
+    for w in words:
+        assert w in str(info.value), (w, str(info.value))
