@@ -114,15 +114,14 @@ def dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
     return (a * b).sum(-1)
 
 
-_NEXT, _PREV = [1, 2, 0], [2, 0, 1]
-
-
 def cross(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
     """Channel-wise cross product over the last axis, ``a x b``; broadcasts like ``a * b``.
 
-    Written with index shuffles: on CPU it is several times faster than ``torch.linalg.cross``.
+    Written out by components: on CPU it is several times faster than ``torch.linalg.cross``.
     """
-    return a[..., _NEXT] * b[..., _PREV] - a[..., _PREV] * b[..., _NEXT]
+    a1, a2, a3 = a.unbind(-1)
+    b1, b2, b3 = b.unbind(-1)
+    return torch.stack([a2 * b3 - a3 * b2, a3 * b1 - a1 * b3, a1 * b2 - a2 * b1], -1)
 
 
 def edge_geometry(points: torch.Tensor, mask: torch.Tensor, config: VectorGateConfig) -> EdgeGeometry:
@@ -306,17 +305,16 @@ class Message(nn.Module):
     def forward(self, x: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
         V, H = self.V, self.H
         X = torch.cat([x.v, x.a], -2) if self.handed else x.v  # (B, N, C, 3): vectors [, pseudo]
-        parts = [self.sender(x.s), x.v.flatten(-2)] + ([x.p] if self.handed else [])
-        widths = [H, 3 * V] + ([V] if self.handed else [])
-        nb = gather_neighbours(torch.cat(parts, -1), geom.index).split(widths, -1)
-        sj, vj = nb[0], nb[1].unflatten(-1, (V, 3))  # (B, N, k, H), (B, N, k, V, 3)
+        sj = gather_neighbours(self.sender(x.s), geom.index)  # (B, N, k, H)
+        vj = gather_neighbours(x.v, geom.index)  # (B, N, k, V, 3)
         rel = geom.rel  # (B, N, k, 3)
         Xi_u = (X @ rel.transpose(-1, -2)).transpose(-1, -2) * geom.inv_len  # (B, N, k, C)
         vj_u = (vj * rel.unsqueeze(-2)).sum(-1) * geom.inv_len  # (B, N, k, V)
         vivj = (vj * x.v.unsqueeze(2)).sum(-1)  # (B, N, k, V)
         even = [geom.rbf, Xi_u[..., :V], vj_u, vivj]
         if self.handed:
-            odd = self.odd(torch.cat([Xi_u[..., V:], nb[2]], -1))  # (B, N, k, 4V), parity odd
+            pj = gather_neighbours(x.p, geom.index)  # (B, N, k, V)
+            odd = self.odd(torch.cat([Xi_u[..., V:], pj], -1))  # (B, N, k, 4V), parity odd
             o1, o2, op, cu_a = odd.split([V, V, V, V], -1)
             even.append(o1 * o2)  # odd x odd = even
         pre = self.even(torch.cat(even, -1)) + self.receiver(x.s).unsqueeze(2) + sj  # (B, N, k, H)
