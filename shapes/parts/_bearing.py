@@ -54,7 +54,7 @@ def ball_bearing(designation: str = "6202", sealed: bool = False, segments: int 
     section = ro - ri
     rm = (ri + ro) / 2.0
     ball = 0.3 * 2.0 * section
-    chamfer = 0.04 * section + 0.2  # corner chamfer r_s (ISO 15 minimum is 0.3 to 1 mm at these sizes)
+    chamfer = 0.04 * section + 0.2  # corner chamfer r_s (from memory: ISO 15 r_s min is 0.3 to 1 mm at these sizes)
     r_inner_shoulder = rm - 0.32 * ball  # ring lands leave the balls showing between them
     r_outer_shoulder = rm + 0.32 * ball
     if sealed:
@@ -71,7 +71,10 @@ def ball_bearing(designation: str = "6202", sealed: bool = False, segments: int 
     groove = 0.45 * ball
     zc = width / 2.0
     # outer ring: the groove opens toward the axis, from the top land down to the bottom land
-    outer = [(r_outer_shoulder, 0.0), (ro - chamfer, 0.0), (ro, chamfer), (ro, width - chamfer), (ro - chamfer, width), (r_outer_shoulder, width)]
+    outer = [
+        (r_outer_shoulder, 0.0), (ro - chamfer, 0.0), (ro, chamfer),
+        (ro, width - chamfer), (ro - chamfer, width), (r_outer_shoulder, width),
+    ]
     land = math.sqrt(max(groove**2 - (r_outer_shoulder - rm) ** 2, 0.0))
     a_top = math.atan2(land, r_outer_shoulder - rm)
     outer += _groove_arc(rm, zc, groove, a_top, -a_top, 7)[1:-1] if land > 0 else []
@@ -82,8 +85,6 @@ def ball_bearing(designation: str = "6202", sealed: bool = False, segments: int 
     inner += [(r_inner_shoulder, width), (ri + chamfer, width), (ri, width - chamfer), (ri, chamfer)]
     rings = mf.Manifold.revolve(mf.CrossSection([outer, inner]), segments)
     n_balls = int(math.floor(2.0 * math.pi * rm / (1.5 * ball)))
-    balls = [
-        mf.Manifold.sphere(ball / 2.0, 16).translate((rm * math.cos(2 * math.pi * k / n_balls), rm * math.sin(2 * math.pi * k / n_balls), zc))
-        for k in range(n_balls)
-    ]
+    angles = [2.0 * math.pi * k / n_balls for k in range(n_balls)]
+    balls = [mf.Manifold.sphere(ball / 2.0, 16).translate((rm * math.cos(a), rm * math.sin(a), zc)) for a in angles]
     return to_trimesh(mf.Manifold.batch_boolean([rings] + balls, mf.OpType.Add))

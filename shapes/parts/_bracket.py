@@ -4,7 +4,6 @@ parts."""
 
 from __future__ import annotations
 
-import math
 
 import manifold3d as mf
 import numpy as np

@@ -60,7 +60,8 @@ def _pair(right, left, stem, family, standard, descriptions, instances):
 
 
 def _nuts(gen):
-    return [(f"{s.lower()}_c{2 if c == 'both' else 1}", {"size": s, "chamfer": c}) for s in ("M6", "M8", "M10") for c in ("both", "one")]
+    rows = [(s, c) for s in ("M6", "M8", "M10") for c in ("both", "one")]
+    return [(f"{s.lower()}_c{2 if c == 'both' else 1}", {"size": s, "chamfer": c}) for s, c in rows]
 
 
 def _washers(gen):
@@ -174,6 +175,36 @@ def _brackets(gen):
     return out
 
 
+# Achiral classes: (name = family, standard, description, instance table).
+_ACHIRAL = [
+    ("hex_nut", "ISO 4032", "regular hex nut, plain bore at the thread minor diameter (thread not modelled)", _nuts),
+    ("plain_washer", "ISO 7089", "plain washer", _washers),
+    ("ball_bearing", "ISO 15", "deep-groove ball bearing, open (balls shown) or sealed faces", _bearings),
+    ("spur_gear", "ISO 53 / ISO 54", "involute spur gear with plain bore", _spur),
+    ("bolted_flange", _COMMON, "flat flange with raised hub and a bolt circle of holes", _flanges),
+    ("stepped_shaft", _COMMON, "stepped shaft with end chamfers and a closed keyway", _shafts),
+    ("v_pulley", _COMMON, "V-belt pulley with one or two grooves and a hub", _pulleys),
+    ("bushing", _COMMON, "plain spacer tube or flanged bushing", _bushings),
+]
+
+# Mirror-twin pairs: (right class, left class, group stem, family, standard, descriptions, instance table).
+_HANDED = [
+    ("stud_rh", "stud_lh", "stud", "threaded_stud", "ISO 68-1 / ISO 261",
+     ("double-ended stud, right-hand ISO metric coarse thread",
+      "double-ended stud, left-hand ISO metric coarse thread"), _studs),
+    ("spring_rh", "spring_lh", "spring", "compression_spring", _COMMON,
+     ("right-hand helical compression spring, closed and ground ends",
+      "left-hand helical compression spring, closed and ground ends"), _springs),
+    ("helical_gear_rh", "helical_gear_lh", "helical_gear", "helical_gear", "ISO 53 / ISO 54",
+     ("right-hand involute helical gear (normal module)",
+      "left-hand involute helical gear (normal module)"), _helical),
+    ("bracket_right", "bracket_left", "bracket", "angle_bracket", _COMMON,
+     ("right angle bracket: unequal legs, off-centre gusset, uneven holes and a slot",
+      "left angle bracket: mirror image of the right one"), _brackets),
+]
+
+
+
 def demo_catalog_spec(seed: int = 0) -> list[dict]:
     """Classes and instances of the demo catalog, without meshes.
 
@@ -187,24 +218,12 @@ def demo_catalog_spec(seed: int = 0) -> list[dict]:
         each instance is ``{"file", "group", "params"}`` and ``build_part(family, **params)``
         rebuilds it. Mirror-twin instances share their original's group.
     """
-    gen = rng(seed)
+    gen = rng(seed)  # drawn in table order: reordering the tables changes the free parameters
     classes = []
-    classes += _achiral("hex_nut", "hex_nut", "ISO 4032", "regular hex nut, plain bore at the thread minor diameter (thread not modelled)", _nuts(gen))
-    classes += _achiral("plain_washer", "plain_washer", "ISO 7089", "plain washer", _washers(gen))
-    classes += _achiral("ball_bearing", "ball_bearing", "ISO 15", "deep-groove ball bearing, open (balls shown) or sealed faces", _bearings(gen))
-    classes += _achiral("spur_gear", "spur_gear", "ISO 53 / ISO 54", "involute spur gear with plain bore", _spur(gen))
-    classes += _achiral("bolted_flange", "bolted_flange", _COMMON, "flat flange with raised hub and a bolt circle of holes", _flanges(gen))
-    classes += _achiral("stepped_shaft", "stepped_shaft", _COMMON, "stepped shaft with end chamfers and a closed keyway", _shafts(gen))
-    classes += _achiral("v_pulley", "v_pulley", _COMMON, "V-belt pulley with one or two grooves and a hub", _pulleys(gen))
-    classes += _achiral("bushing", "bushing", _COMMON, "plain spacer tube or flanged bushing", _bushings(gen))
-    classes += _pair("stud_rh", "stud_lh", "stud", "threaded_stud", "ISO 68-1 / ISO 261",
-                     ("double-ended stud, right-hand ISO metric coarse thread", "double-ended stud, left-hand ISO metric coarse thread"), _studs(gen))
-    classes += _pair("spring_rh", "spring_lh", "spring", "compression_spring", _COMMON,
-                     ("right-hand helical compression spring, closed and ground ends", "left-hand helical compression spring, closed and ground ends"), _springs(gen))
-    classes += _pair("helical_gear_rh", "helical_gear_lh", "helical_gear", "helical_gear", "ISO 53 / ISO 54",
-                     ("right-hand involute helical gear (normal module)", "left-hand involute helical gear (normal module)"), _helical(gen))
-    classes += _pair("bracket_right", "bracket_left", "bracket", "angle_bracket", _COMMON,
-                     ("right angle bracket: unequal legs, off-centre gusset, uneven holes and a slot", "left angle bracket: mirror image of the right one"), _brackets(gen))
+    for name, standard, description, instances in _ACHIRAL:
+        classes += _achiral(name, name, standard, description, instances(gen))
+    for right, left, stem, family, standard, descriptions, instances in _HANDED:
+        classes += _pair(right, left, stem, family, standard, descriptions, instances(gen))
     for c in classes:
         assert c["family"] in FAMILIES, c["family"]
     return classes

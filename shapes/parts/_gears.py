@@ -147,7 +147,9 @@ def helical_gear(
     )
     m_t = module / cos_b
     alpha_t = math.degrees(math.atan(math.tan(math.radians(_PRESSURE_DEG)) / cos_b))
-    outline = gear_profile(m_t, teeth, alpha_t, addendum=module, dedendum=1.25 * module, flank_points=4, tip_points=2, root_points=3)
+    outline = gear_profile(
+        m_t, teeth, alpha_t, addendum=module, dedendum=1.25 * module, flank_points=4, tip_points=2, root_points=3
+    )
     r_pitch = m_t * teeth / 2.0
     twist = math.degrees(face_width * math.tan(math.radians(helix_deg)) / r_pitch)
     divisions = max(1, math.ceil(twist / 5.0)) - 1  # <= 5 degrees between slices: chord sag < 1e-3 r

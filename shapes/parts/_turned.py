@@ -47,12 +47,16 @@ def bolted_flange(
     check.less_than(f, "hub_d + hole_d", hub_d + hole_d, "bolt_circle_d", bolt_circle_d)
     check.less_than(f, "bolt_circle_d + hole_d", bolt_circle_d + hole_d, "outer_d", outer_d)
     if math.pi * bolt_circle_d / holes < 1.5 * hole_d:
-        raise InputError(f"{f}: {holes} holes of {hole_d:g} mm should leave material between them, got overlapping holes instead.")
+        raise InputError(
+            f"{f}: {holes} holes of {hole_d:g} mm should leave material between them, got overlapping holes instead."
+        )
     rb, ro, rh = bore_d / 2.0, outer_d / 2.0, hub_d / 2.0
-    body = _revolve([(rb, 0.0), (ro, 0.0), (ro, thickness), (rh, thickness), (rh, thickness + hub_h), (rb, thickness + hub_h)], segments)
+    top = thickness + hub_h
+    body = _revolve([(rb, 0.0), (ro, 0.0), (ro, thickness), (rh, thickness), (rh, top), (rb, top)], segments)
     hole = mf.Manifold.cylinder(thickness + 2.0, hole_d / 2.0, -1.0, 24).translate((0.0, 0.0, -1.0))
     r = bolt_circle_d / 2.0
-    cutters = [hole.translate((r * math.cos(2 * math.pi * k / holes), r * math.sin(2 * math.pi * k / holes), 0.0)) for k in range(holes)]
+    angles = [2.0 * math.pi * k / holes for k in range(holes)]
+    cutters = [hole.translate((r * math.cos(a), r * math.sin(a), 0.0)) for a in angles]
     return to_trimesh(body - mf.Manifold.batch_boolean(cutters, mf.OpType.Add))
 
 
@@ -72,7 +76,9 @@ def stepped_shaft(
     """
     f = "stepped_shaft"
     if not isinstance(diameters, (list, tuple)) or not isinstance(lengths, (list, tuple)) or len(diameters) != len(lengths):
-        raise InputError(f"{f}: diameters and lengths should be lists of the same length, got {diameters!r} and {lengths!r} instead.")
+        raise InputError(
+            f"{f}: diameters and lengths should be lists of the same length, got {diameters!r} and {lengths!r} instead."
+        )
     if not 2 <= len(diameters) <= 6:
         raise InputError(f"{f}: should have 2 to 6 steps, got {len(diameters)} instead.")
     diameters = [check.positive(f, f"diameters[{i}]", d) for i, d in enumerate(diameters)]
@@ -135,7 +141,9 @@ def v_pulley(
     check.less_than(f, "hub_d", hub_d, "outer_d - 2.5 * groove_depth", outer_d - 2.5 * groove_depth)
     bottom_w = groove_top_w - 2.0 * groove_depth * math.tan(math.radians(groove_deg / 2.0))
     if bottom_w <= 0.1:
-        raise InputError(f"{f}: groove bottom width should be > 0.1 mm, got {bottom_w:.3g} mm (groove too deep for its width) instead.")
+        raise InputError(
+            f"{f}: groove bottom width should be > 0.1 mm, got {bottom_w:.3g} mm (groove too deep for its width) instead."
+        )
     land = 0.3 * groove_top_w + 1.0
     rim_w = grooves * groove_top_w + (grooves + 1) * land
     ro, rg = outer_d / 2.0, outer_d / 2.0 - groove_depth
@@ -148,7 +156,8 @@ def v_pulley(
     z = 0.0
     for _ in range(grooves):
         z += land
-        pts += [(ro, z), (rg, z + (groove_top_w - bottom_w) / 2.0), (rg, z + (groove_top_w + bottom_w) / 2.0), (ro, z + groove_top_w)]
+        flank = (groove_top_w - bottom_w) / 2.0
+        pts += [(ro, z), (rg, z + flank), (rg, z + flank + bottom_w), (ro, z + groove_top_w)]
         z += groove_top_w
     pts += [(ro, rim_w), (r_rim_in, rim_w), (r_rim_in, zw0 + web), (rh, zw0 + web), (rh, rim_w), (rb, rim_w)]
     return to_trimesh(_revolve(pts, segments).translate((0.0, 0.0, hub_h)))

@@ -217,7 +217,9 @@ def align_rigid(mesh_a: trimesh.Trimesh, mesh_b: trimesh.Trimesh, samples: int =
         init[:3, :3] = rot
         init[:3, 3] = cb - rot @ ca
         # point-to-point first (wide basin), then point-to-plane (accurate)
-        matrix, _, _ = icp(moving, surf_b.points[::4], initial=init, threshold=1e-6, max_iterations=10, reflection=False, scale=False)
+        matrix, _, _ = icp(
+            moving, surf_b.points[::4], initial=init, threshold=1e-6, max_iterations=10, reflection=False, scale=False
+        )
         matrix = _icp_plane(moving, surf_b, matrix, iterations=10)
         score = float(surf_b.distance(trimesh.transform_points(moving, matrix)).mean())
         if best is None or score < best[0]:
@@ -240,7 +242,9 @@ def _similar(a: np.ndarray, b: np.ndarray, tol: float) -> bool:
     return bool(np.all(np.abs(a - b) <= tol * np.maximum(np.abs(a), np.abs(b)) + 1e-12))
 
 
-def is_rotation_of(mesh_a: trimesh.Trimesh, mesh_b: trimesh.Trimesh, samples: int = 2000, tol: float = DEFAULT_TOL, seed: int = 0) -> bool:
+def is_rotation_of(
+    mesh_a: trimesh.Trimesh, mesh_b: trimesh.Trimesh, samples: int = 2000, tol: float = DEFAULT_TOL, seed: int = 0
+) -> bool:
     """True when ``mesh_b`` is ``mesh_a`` moved by a rotation and a translation (no reflection).
 
     Parameters
