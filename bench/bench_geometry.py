@@ -10,10 +10,13 @@ Cases
 
 What is measured
 ----------------
-- time: median wall-clock seconds over ``--repeats`` calls after one warm-up call.
-- peak_rss_mib: growth of the process's peak resident set (``resource.getrusage`` max RSS)
-  during the first call, measured in a fresh subprocess per case, so it is the extra memory the
-  call needed at its peak (inputs already allocated are not counted).
+- time: median wall-clock seconds over ``--repeats`` calls after one warm-up call; the two sides
+  of each comparison alternate call by call in one process, so load from other jobs on the
+  shared machine hits both alike (the ratios are the figures to read, not the absolute times).
+- peak_rss_mib: growth of the process's peak resident set (VmHWM, reset through
+  /proc/self/clear_refs; ``resource.getrusage`` max RSS where that is missing) during the first
+  call, in a fresh subprocess per case: the extra memory the call needed at its peak, outputs
+  included (inputs already allocated are not counted).
 - largest_buffer_mib (knn): size of the largest distance block, from the shapes.
 
 Run: ``.venv/bin/python bench/bench_geometry.py`` (about 1-2 min); writes bench/results/geometry.json.
@@ -98,7 +101,24 @@ def dense_knn(points: torch.Tensor, k: int) -> torch.Tensor:
 # ----------------------------------------------------------------------------------------------
 
 
-def _max_rss_mib() -> float:
+def _reset_peak() -> None:
+    """Reset the kernel's peak-RSS mark (Linux >= 4.0); exec'd children otherwise inherit the parent's."""
+    try:
+        with open("/proc/self/clear_refs", "w") as f:
+            f.write("5")
+    except OSError:
+        pass
+
+
+def _peak_rss_mib() -> float:
+    """Peak resident set (VmHWM) in MiB; falls back to ``resource.getrusage`` max RSS."""
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except OSError:
+        pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux reports KiB
 
 
@@ -130,18 +150,29 @@ def _build_case(name: str):
     raise SystemExit(f"unknown case {name!r}")
 
 
-def run_case(name: str, repeats: int, threads: int) -> dict:
+def run_case(name: str, threads: int) -> dict:
+    """Peak memory of one first call, in a fresh process (so earlier cases do not mask it)."""
     torch.set_num_threads(threads)
     fn, info = _build_case(name)
-    before = _max_rss_mib()
-    fn()  # first call: warm-up and peak memory
-    peak = _max_rss_mib() - before
-    times = []
+    _reset_peak()
+    before = _peak_rss_mib()
+    fn()
+    return {"case": name, **info, "peak_rss_mib": _peak_rss_mib() - before}
+
+
+def time_pair(ours: str, reference: str, repeats: int) -> dict:
+    """Median times of two cases measured alternately in this process, so that load from other
+    jobs on the shared machine hits both alike; the ratio is what the figures are for."""
+    fns = {name: _build_case(name)[0] for name in (ours, reference)}
+    for fn in fns.values():
+        fn()  # warm-up
+    times = {name: [] for name in fns}
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return {"case": name, **info, "median_s": statistics.median(times), "times_s": times, "peak_rss_mib": peak}
+        for name, fn in fns.items():
+            t0 = time.perf_counter()
+            fn()
+            times[name].append(time.perf_counter() - t0)
+    return {name: {"median_s": statistics.median(t), "times_s": t} for name, t in times.items()}
 
 
 def _agreement() -> dict:
@@ -170,28 +201,33 @@ def main() -> None:
     parser.add_argument("--out", type=Path, default=RESULTS)
     args = parser.parse_args()
     if args.case:
-        print(json.dumps(run_case(args.case, args.repeats, args.threads)))
+        print(json.dumps(run_case(args.case, args.threads)))
         return
 
-    cases = [
-        "harmonics_recurrence_l3", "harmonics_naive_l3",
-        "harmonics_recurrence_l6", "harmonics_naive_l6",
-        "knn_chunked", "knn_dense",
-        "knn_chunked_big", "knn_dense_big",
+    pairs = [
+        ("harmonics_recurrence_l3", "harmonics_naive_l3"),
+        ("harmonics_recurrence_l6", "harmonics_naive_l6"),
+        ("knn_chunked", "knn_dense"),
+        ("knn_chunked_big", "knn_dense_big"),
     ]
     load_start = os.getloadavg()
+    torch.set_num_threads(args.threads)
+    # Memory first, each case in a fresh process, while this process is still small.
     results = {}
-    for name in cases:
-        repeats = 2 if name.endswith("_big") else args.repeats
-        cmd = [sys.executable, __file__, "--case", name, "--repeats", str(repeats), "--threads", str(args.threads)]
+    for name in [n for pair in pairs for n in pair]:
+        cmd = [sys.executable, __file__, "--case", name, "--threads", str(args.threads)]
         out = subprocess.run(cmd, check=True, capture_output=True, text=True)
         results[name] = json.loads(out.stdout.strip().splitlines()[-1])
-        print(f"{name:26s} median {results[name]['median_s']:.4f} s  peak +{results[name]['peak_rss_mib']:.0f} MiB")
+    for ours, reference in pairs:
+        repeats = 3 if ours.endswith("_big") else args.repeats
+        timed = time_pair(ours, reference, repeats)
+        for name in (ours, reference):
+            results[name].update(timed[name])
+            print(f"{name:26s} median {results[name]['median_s']:.4f} s  peak +{results[name]['peak_rss_mib']:.0f} MiB")
 
     def ratio(slow, fast, key):
         return results[slow][key] / max(results[fast][key], 1e-9)
 
-    torch.set_num_threads(args.threads)
     summary = {
         "harmonics_l3_speedup_vs_naive": ratio("harmonics_naive_l3", "harmonics_recurrence_l3", "median_s"),
         "harmonics_l6_speedup_vs_naive": ratio("harmonics_naive_l6", "harmonics_recurrence_l6", "median_s"),
@@ -214,8 +250,8 @@ def main() -> None:
             "load_average_at_end": os.getloadavg(),
         },
         "method": {
-            "time": "median wall-clock over repeats after one warm-up call",
-            "peak_rss_mib": "growth of max RSS (resource.getrusage) during the first call, fresh subprocess per case",
+            "time": "median wall-clock over repeats after one warm-up call; the two sides of each ratio alternate in one process",
+            "peak_rss_mib": "growth of peak RSS (VmHWM after a clear_refs reset) during the first call, fresh subprocess per case, outputs included",
             "naive_harmonics": "per-(l, m) closed form from the Rodrigues definition of P_l, Horner in cos(theta)",
             "dense_knn": "torch.cdist (B, N, N) + topk",
         },
