@@ -137,10 +137,18 @@ def _latest_run(run: str) -> str:
 
 
 def _run_parts(cfg) -> None:
-    from shapes.parts import write_demo_catalog
+    from shapes.parts import summarize_catalog, write_demo_catalog
 
     out = write_demo_catalog(cfg.parts.out, seed=cfg.seed)
-    print(f"wrote the demo catalog to {out}/ (catalog.json lists classes, twins and standards)")
+    rows = summarize_catalog(out)
+    width = max(len(r["name"]) for r in rows)
+    print(f"{'class':<{width}}  {'mirror twin':<{width}}  inst  faces       standard")
+    for r in rows:
+        twin = "(itself)" if r["twin"] == r["name"] else r["twin"]
+        print(f"{r['name']:<{width}}  {twin:<{width}}  {r['instances']:>4}  "
+              f"{r['faces_min']:>5}-{r['faces_max']:<5}  {r['standard']}")
+    print(f"wrote {sum(r['instances'] for r in rows)} meshes in {len(rows)} classes to {out}/ "
+          "(catalog.json lists classes, twins and standards)")
 
 
 def _run_sample(cfg) -> None:
