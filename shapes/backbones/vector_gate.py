@@ -77,7 +77,11 @@ class EdgeGeometry(NamedTuple):
     index (B, N, k) senders; mean (B, N, k) 1 / (number of valid neighbours) on valid edges, 0 on
     missing or padded ones, so a sum over k is a masked mean; weight (B, N, k) ``mean`` times the
     smooth envelope; rel (B, N, k, 3) edge vectors sender - receiver in units of ``L``; inv_len
-    (B, N, k, 1) 1 / length, floored; rbf (B, N, k, R) radial basis of the length.
+    (B, N, k, 1) 1 / length, floored; rbf (B, N, k, R) radial basis of the length; moment
+    (B, 1, 3, 3) three times the cloud's second moment ``mean (x - c)(x - c)^T`` over its mean square
+    radius (I for a round cloud). It turns as ``Q M Q^T`` under any orthogonal Q and has no sign to
+    lose, so ``M v`` is a vector (and ``M a`` a pseudo-vector) that tells each point how its
+    directions sit against the part's long and short axes.
     """
 
     index: torch.Tensor
@@ -86,6 +90,7 @@ class EdgeGeometry(NamedTuple):
     rel: torch.Tensor
     inv_len: torch.Tensor
     rbf: torch.Tensor
+    moment: torch.Tensor
 
 
 # ---------------------------------------------------------------------------------------------
@@ -153,7 +158,16 @@ def edge_geometry(points: torch.Tensor, mask: torch.Tensor, config: VectorGateCo
         # floored so that duplicate points (length 0) give direction terms of 0, not noise / 0
         inv_len=torch.rsqrt(x * x + 1e-6).unsqueeze(-1),
         rbf=radial_basis(x, config.num_radial),
+        moment=_moment(points, mask),
     )
+
+
+def _moment(centred: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
+    """``3 mean(y y^T) / mean(|y|^2)`` over the real points of centred clouds -> (B, 1, 3, 3)."""
+    outer = centred.unsqueeze(-1) * centred.unsqueeze(-2)  # (B, N, 3, 3)
+    m = masked_mean(outer.flatten(-2), mask).unflatten(-1, (3, 3))  # (B, 3, 3)
+    trace = m.diagonal(dim1=-2, dim2=-1).sum(-1).clamp_min(_EPS)  # (B,)
+    return (3.0 * m / trace[:, None, None]).unsqueeze(1)  # (B, 1, 3, 3)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -221,12 +235,14 @@ class FeatureNorm(nn.Module):
 class Embedding(nn.Module):
     """Initial features from each point's neighbourhood and its offset from the centroid.
 
-    Three vectors per point: ``c1`` the mean edge vector to its neighbours (it points into the
-    local curvature), ``c2`` the offset from the centroid over the cloud's RMS radius, and
+    Four vectors per point: ``c1`` the mean edge vector to its neighbours (it points into the
+    local curvature), ``c2`` the offset from the centroid over the cloud's RMS radius,
     ``c3 = C c2`` with ``C = mean_j r_ij r_ij^T`` the local second moment (how the patch spreads
-    along the centroid direction). Scalars: their lengths, their pairwise cosines and the mean and
-    spread of the neighbour distances. Pseudo-vectors: the three cross products. Pseudo-scalar: the
-    normalised triple product ``det[c1, c2, c3] / (|c1| |c2| |c3|)``, the first handed quantity.
+    along the centroid direction), and ``c4 = M c1`` with ``M`` the cloud's normalised second moment
+    (the local curvature direction against the part's axes). Scalars: their lengths, the cosines of
+    neighbouring pairs and the mean and spread of the neighbour distances. Pseudo-vectors: cross
+    products of neighbouring pairs. Pseudo-scalars: the normalised triple products
+    ``det[c_a, c_b, c_c] / (|c_a| |c_b| |c_c|)`` of neighbouring triples, the first handed quantities.
     (A triple product of ``c1``, ``c2`` and a plain edge average would vanish: ``c1`` is that average.)
     """
 
@@ -234,11 +250,11 @@ class Embedding(nn.Module):
         super().__init__()
         S, V = config.scalars, config.vectors
         self.handed = config.handedness
-        self.scalar = nn.Linear(8, S)
-        self.vector = ChannelMix(3, V)
+        self.scalar = nn.Linear(10, S)
+        self.vector = ChannelMix(4, V)
         if self.handed:
-            self.pseudo_vector = ChannelMix(3, V)
-            self.pseudo_scalar = nn.Linear(1, V, bias=False)  # no bias: a bias is parity even
+            self.pseudo_vector = ChannelMix(4, V)
+            self.pseudo_scalar = nn.Linear(4, V, bias=False)  # no bias: a bias is parity even
 
     def forward(self, centred: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry) -> PointFeatures:
         rms = torch.sqrt(masked_mean((centred * centred).sum(-1, keepdim=True), mask) + _EPS)  # (B, 1)
@@ -247,9 +263,10 @@ class Embedding(nn.Module):
         c1 = (rel * mean).sum(2)  # (B, N, 3)
         along = (rel * c2.unsqueeze(2)).sum(-1, keepdim=True)  # (B, N, k, 1)
         c3 = (rel * along * mean).sum(2)  # (B, N, 3)
-        c = torch.stack([c1, c2, c3], -2)  # (B, N, 3, 3): channel, xyz
-        n = vector_norm(c)  # (B, N, 3)
-        cos = dot(c, c.roll(-1, -2)) / (n * n.roll(-1, -1))  # (B, N, 3): c1.c2, c2.c3, c3.c1
+        c4 = c1 @ geom.moment[:, 0]  # (B, N, 3): M c1 (M is symmetric)
+        c = torch.stack([c1, c2, c3, c4], -2)  # (B, N, 4, 3): channel, xyz
+        n = vector_norm(c)  # (B, N, 4)
+        cos = dot(c, c.roll(-1, -2)) / (n * n.roll(-1, -1))  # (B, N, 4): c1.c2, c2.c3, c3.c4, c4.c1
         dist = torch.sqrt((rel * rel).sum(-1, keepdim=True) + _EPS)  # (B, N, k, 1)
         mean_d = (dist * mean).sum(2)  # (B, N, 1)
         spread = torch.sqrt((((dist - mean_d.unsqueeze(2)) ** 2) * mean).sum(2) + _EPS)  # (B, N, 1)
@@ -257,9 +274,9 @@ class Embedding(nn.Module):
         v = self.vector(c)  # (B, N, V, 3)
         if not self.handed:
             return PointFeatures(s, v, None, None)
-        axial = cross(c, c.roll(-1, -2))  # (B, N, 3, 3): c1 x c2, c2 x c3, c3 x c1
+        axial = cross(c, c.roll(-1, -2))  # (B, N, 4, 3): c1 x c2, c2 x c3, c3 x c4, c4 x c1
         a = self.pseudo_vector(axial)  # (B, N, V, 3)
-        triple = dot(axial[..., 0, :], c3).unsqueeze(-1) / n.prod(-1, keepdim=True)  # (B, N, 1)
+        triple = dot(axial, c.roll(-2, -2)) / (n * n.roll(-1, -1) * n.roll(-2, -1))  # (B, N, 4)
         p = self.pseudo_scalar(triple)  # (B, N, V)
         return PointFeatures(s, v, p, a)
 
@@ -340,7 +357,9 @@ class Update(nn.Module):
 
     With handedness, cross products between mixed channel pairs couple the kinds: two vectors give a
     pseudo-vector, a vector and a pseudo-vector give a vector (two pseudo-vectors would give a
-    pseudo-vector again: the two signs cancel and the cross product brings its own); ``v_t . a_t`` gives pseudo-scalars. Scalars
+    pseudo-vector again: the two signs cancel and the cross product brings its own); ``v_t . a_t``
+    gives pseudo-scalars. The inputs are the point's own channels, what arrived, and the own
+    channels mapped by the cloud's moment ``M`` (global context without a sign ambiguity). Scalars
     see ``s``, the scalar message, the norms of the new vectors and products of pairs of
     pseudo-scalars; one MLP on them gives the scalar update and the gates.
     """
@@ -351,23 +370,23 @@ class Update(nn.Module):
         self.S, self.V, self.handed = S, V, config.handedness
         n_in = 2 * S + V
         if self.handed:
-            self.pair_v = ChannelMix(2 * V, 2 * V)
-            self.pair_a = ChannelMix(2 * V, V)
-            self.mix_v = ChannelMix(3 * V, V)
-            self.mix_a = ChannelMix(3 * V, V)
+            self.pair_v = ChannelMix(3 * V, 2 * V)
+            self.pair_a = ChannelMix(3 * V, V)
+            self.mix_v = ChannelMix(4 * V, V)
+            self.mix_a = ChannelMix(4 * V, V)
             self.mix_p = nn.Linear(3 * V, V, bias=False)
             self.odd_pair = nn.Linear(V, 2 * V, bias=False)
             n_in += 2 * V
         else:
-            self.mix_v = ChannelMix(2 * V, V)
+            self.mix_v = ChannelMix(3 * V, V)
         self.hidden = nn.Linear(n_in, 2 * S)  # twice as wide as the scalars, as transformer MLPs are
         self.out = nn.Linear(2 * S, S + V + (2 * V if self.handed else 0))
 
-    def forward(self, x: PointFeatures, xn: PointFeatures, m: PointFeatures) -> PointFeatures:
+    def forward(self, x: PointFeatures, xn: PointFeatures, m: PointFeatures, moment: torch.Tensor) -> PointFeatures:
         S, V = self.S, self.V
-        vv = torch.cat([xn.v, m.v], -2)  # (B, N, 2V, 3)
+        vv = torch.cat([xn.v, m.v, xn.v @ moment], -2)  # (B, N, 3V, 3): own, arrived, M v
         if self.handed:
-            aa = torch.cat([xn.a, m.a], -2)  # (B, N, 2V, 3)
+            aa = torch.cat([xn.a, m.a, xn.a @ moment], -2)  # (B, N, 3V, 3)
             w1, w2 = self.pair_v(vv).chunk(2, -2)  # (B, N, V, 3) each
             z = self.pair_a(aa)  # (B, N, V, 3)
             vt = self.mix_v(torch.cat([vv, cross(w2, z)], -2))  # (B, N, V, 3) vector
@@ -400,7 +419,7 @@ class VectorGateLayer(nn.Module):
 
     def forward(self, x: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
         xn = self.norm(x)
-        return self.update(x, xn, self.message(xn, geom))
+        return self.update(x, xn, self.message(xn, geom), geom.moment)
 
 
 # ---------------------------------------------------------------------------------------------
