@@ -81,7 +81,7 @@ class EdgeGeometry(NamedTuple):
     (B, 1, 3, 3) three times the cloud's second moment ``mean (x - c)(x - c)^T`` over its mean square
     radius (I for a round cloud). It turns as ``Q M Q^T`` under any orthogonal Q and has no sign to
     lose, so ``M v`` is a vector (and ``M a`` a pseudo-vector) that tells each point how its
-    directions sit against the part's long and short axes.
+    directions sit against the part's long and short axes; mask (B, N) real points.
     """
 
     index: torch.Tensor
@@ -91,6 +91,7 @@ class EdgeGeometry(NamedTuple):
     inv_len: torch.Tensor
     rbf: torch.Tensor
     moment: torch.Tensor
+    mask: torch.Tensor
 
 
 # ---------------------------------------------------------------------------------------------
@@ -159,7 +160,13 @@ def edge_geometry(points: torch.Tensor, mask: torch.Tensor, config: VectorGateCo
         inv_len=torch.rsqrt(x * x + 1e-6).unsqueeze(-1),
         rbf=radial_basis(x, config.num_radial),
         moment=_moment(points, mask),
+        mask=mask,
     )
+
+
+def _cloud_mean(v: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
+    """Mean over the real points of ``v (B, N, C, 3)`` -> (B, C, 3): a vector per cloud and channel."""
+    return masked_mean(v, mask)
 
 
 def _moment(centred: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
@@ -232,6 +239,37 @@ class FeatureNorm(nn.Module):
         return PointFeatures(self.s(x.s), self.v(x.v), self.p(x.p), self.a(x.a))
 
 
+def _det(a: torch.Tensor, b: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
+    """Normalised triple product ``det[a, b, c] / (|a| |b| |c|)`` of ``(..., 3)`` vectors -> (...)."""
+    n = vector_norm(torch.stack([a, b, c], -2)).prod(-1)  # (...)
+    return dot(cross(a, b), c) / n
+
+
+def _twist(c1: torch.Tensor, c3: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry) -> torch.Tensor:
+    """How the local vectors turn about the edges: ``mean_j det[c_i, c_j, r_ij]`` -> (B, N, 2).
+
+    Zero on a plane or an untwisted cylinder, of one sign along a right-hand helical surface
+    (thread flanks, coils) and of the other on its mirror image. Divided by the cloud's mean
+    ``|c|^2`` so that flat patches give small values rather than amplified noise.
+    """
+    c = torch.stack([c1, c3], -2)  # (B, N, 2, 3)
+    cj = gather_neighbours(c, geom.index)  # (B, N, k, 2, 3)
+    twist = (dot(cross(c.unsqueeze(2), cj), geom.rel.unsqueeze(-2)) * geom.mean.unsqueeze(-1)).sum(2)  # (B, N, 2)
+    scale = masked_mean((c * c).sum(-1), mask).clamp_min(_EPS)  # (B, 2)
+    return twist / scale.unsqueeze(1)
+
+
+def _global_chirality(c2: torch.Tensor, geom: EdgeGeometry) -> torch.Tensor:
+    """``det[y, M y, M^2 y]`` for each point's offset ``y`` from the centroid -> (B, N, 1).
+
+    In the frame of M's axes it is ``y1 y2 y3`` times a product of eigenvalue gaps: its cloud mean
+    is a third moment that flips sign under any reflection and vanishes for mirror-symmetric parts.
+    """
+    my = c2 @ geom.moment[:, 0]  # (B, N, 3)
+    mmy = my @ geom.moment[:, 0]  # (B, N, 3)
+    return dot(cross(c2, my), mmy).unsqueeze(-1)
+
+
 class Embedding(nn.Module):
     """Initial features from each point's neighbourhood and its offset from the centroid.
 
@@ -241,8 +279,10 @@ class Embedding(nn.Module):
     along the centroid direction), and ``c4 = M c1`` with ``M`` the cloud's normalised second moment
     (the local curvature direction against the part's axes). Scalars: their lengths, the cosines of
     neighbouring pairs and the mean and spread of the neighbour distances. Pseudo-vectors: cross
-    products of neighbouring pairs. Pseudo-scalars: the normalised triple products
-    ``det[c_a, c_b, c_c] / (|c_a| |c_b| |c_c|)`` of neighbouring triples, the first handed quantities.
+    products of neighbouring pairs. Pseudo-scalars, the first handed quantities: the normalised
+    triple products ``det[c_a, c_b, c_c] / (|c_a| |c_b| |c_c|)`` of neighbouring triples, the helix
+    terms ``det[c2, c3, M c3]`` and ``det[c2, c3, M^2 c3]``, the twist of ``c1`` and ``c3`` about the
+    edges and the global chirality ``det[c2, M c2, M^2 c2]``.
     (A triple product of ``c1``, ``c2`` and a plain edge average would vanish: ``c1`` is that average.)
     """
 
@@ -254,7 +294,7 @@ class Embedding(nn.Module):
         self.vector = ChannelMix(4, V)
         if self.handed:
             self.pseudo_vector = ChannelMix(4, V)
-            self.pseudo_scalar = nn.Linear(4, V, bias=False)  # no bias: a bias is parity even
+            self.pseudo_scalar = nn.Linear(9, V, bias=False)  # no bias: a bias is parity even
 
     def forward(self, centred: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry) -> PointFeatures:
         rms = torch.sqrt(masked_mean((centred * centred).sum(-1, keepdim=True), mask) + _EPS)  # (B, 1)
@@ -263,7 +303,8 @@ class Embedding(nn.Module):
         c1 = (rel * mean).sum(2)  # (B, N, 3)
         along = (rel * c2.unsqueeze(2)).sum(-1, keepdim=True)  # (B, N, k, 1)
         c3 = (rel * along * mean).sum(2)  # (B, N, 3)
-        c4 = c1 @ geom.moment[:, 0]  # (B, N, 3): M c1 (M is symmetric)
+        M = geom.moment[:, 0]  # (B, 3, 3), symmetric
+        c4, c5 = c1 @ M, c3 @ M  # (B, N, 3) each
         c = torch.stack([c1, c2, c3, c4], -2)  # (B, N, 4, 3): channel, xyz
         n = vector_norm(c)  # (B, N, 4)
         cos = dot(c, c.roll(-1, -2)) / (n * n.roll(-1, -1))  # (B, N, 4): c1.c2, c2.c3, c3.c4, c4.c1
@@ -277,7 +318,11 @@ class Embedding(nn.Module):
         axial = cross(c, c.roll(-1, -2))  # (B, N, 4, 3): c1 x c2, c2 x c3, c3 x c4, c4 x c1
         a = self.pseudo_vector(axial)  # (B, N, V, 3)
         triple = dot(axial, c.roll(-2, -2)) / (n * n.roll(-1, -1) * n.roll(-2, -1))  # (B, N, 4)
-        p = self.pseudo_scalar(triple)  # (B, N, V)
+        # det[y, C y, M C y]: along a helix C y follows the local tangent t and this is about
+        # det[y, t, axis] (t . axis), whose sign is the hand of the helix (springs, helical teeth)
+        helix = torch.stack([_det(c2, c3, c5), _det(c2, c3, c5 @ M)], -1)  # (B, N, 2)
+        odd = [triple, helix, _twist(c1, c3, mask, geom), _global_chirality(c2, geom)]
+        p = self.pseudo_scalar(torch.cat(odd, -1))  # (B, N, V)
         return PointFeatures(s, v, p, a)
 
 
@@ -287,8 +332,9 @@ class Message(nn.Module):
     Parity-even edge invariants: the radial basis of the length, the receiver's and the sender's
     scalars, ``v . u`` at both ends with the unit edge direction ``u``, and the channel-wise inner
     products ``v_i . v_j``. Parity-odd ones (handed only): the receiver's ``a . u`` (its
-    pseudo-vectors hold cross products, so these are triple products ``(v_a x v_b) . u``) and the
-    sender's pseudo-scalars (the receiver's own enter at the update). The edge MLP sees the odd ones
+    pseudo-vectors hold cross products, so these are triple products ``(v_a x v_b) . u``), the
+    sender's pseudo-scalars (the receiver's own enter at the update) and, for a few mixed channels
+    ``q``, the twist ``(q_i x q_j) . u`` of the vectors along the edge. The edge MLP sees the odd ones
     only through products of two odd linear maps, so its hidden layer stays even and still knows
     their relative signs.
 
@@ -314,7 +360,9 @@ class Message(nn.Module):
         self.scalar = nn.Linear(H, S)
         if self.handed:
             # no bias on anything odd: a bias is parity even
-            self.odd = nn.Linear(2 * V, 4 * V, bias=False)
+            self.W = min(4, V)  # channels whose twist about the edges is measured
+            self.twist = ChannelMix(V, self.W)
+            self.odd = nn.Linear(2 * V + self.W, 4 * V, bias=False)
             self.coef = nn.Linear(H, 3 * V)
         else:
             self.coef = nn.Linear(H, 2 * V)
@@ -331,7 +379,10 @@ class Message(nn.Module):
         even = [geom.rbf, Xi_u[..., :V], vj_u, vivj]
         if self.handed:
             pj = gather_neighbours(x.p, geom.index)  # (B, N, k, V)
-            odd = self.odd(torch.cat([Xi_u[..., V:], pj], -1))  # (B, N, k, 4V), parity odd
+            q = self.twist(x.v)  # (B, N, W, 3): a few mixed vector channels
+            qj = gather_neighbours(q, geom.index)  # (B, N, k, W, 3)
+            twist = dot(cross(q.unsqueeze(2), qj), rel.unsqueeze(-2)) * geom.inv_len  # (B, N, k, W)
+            odd = self.odd(torch.cat([Xi_u[..., V:], pj, twist], -1))  # (B, N, k, 4V), parity odd
             o1, o2, op, cu_a = odd.split([V, V, V, V], -1)
             even.append(o1 * o2)  # odd x odd = even
         pre = self.even(torch.cat(even, -1)) + self.receiver(x.s).unsqueeze(2) + sj  # (B, N, k, H)
@@ -358,8 +409,9 @@ class Update(nn.Module):
     With handedness, cross products between mixed channel pairs couple the kinds: two vectors give a
     pseudo-vector, a vector and a pseudo-vector give a vector (two pseudo-vectors would give a
     pseudo-vector again: the two signs cancel and the cross product brings its own); ``v_t . a_t``
-    gives pseudo-scalars. The inputs are the point's own channels, what arrived, and the own
-    channels mapped by the cloud's moment ``M`` (global context without a sign ambiguity). Scalars
+    gives pseudo-scalars. The inputs are the point's own channels, what arrived, the own
+    channels mapped by the cloud's moment ``M`` and the cloud's mean of each channel (global
+    context: how this point's directions sit against the whole part). Scalars
     see ``s``, the scalar message, the norms of the new vectors and products of pairs of
     pseudo-scalars; one MLP on them gives the scalar update and the gates.
     """
@@ -370,23 +422,29 @@ class Update(nn.Module):
         self.S, self.V, self.handed = S, V, config.handedness
         n_in = 2 * S + V
         if self.handed:
-            self.pair_v = ChannelMix(3 * V, 2 * V)
-            self.pair_a = ChannelMix(3 * V, V)
-            self.mix_v = ChannelMix(4 * V, V)
-            self.mix_a = ChannelMix(4 * V, V)
+            self.pair_v = ChannelMix(4 * V, 2 * V)
+            self.pair_a = ChannelMix(4 * V, V)
+            self.mix_v = ChannelMix(5 * V, V)
+            self.mix_a = ChannelMix(5 * V, V)
             self.mix_p = nn.Linear(3 * V, V, bias=False)
             self.odd_pair = nn.Linear(V, 2 * V, bias=False)
             n_in += 2 * V
         else:
-            self.mix_v = ChannelMix(3 * V, V)
+            self.mix_v = ChannelMix(4 * V, V)
         self.hidden = nn.Linear(n_in, 2 * S)  # twice as wide as the scalars, as transformer MLPs are
         self.out = nn.Linear(2 * S, S + V + (2 * V if self.handed else 0))
 
-    def forward(self, x: PointFeatures, xn: PointFeatures, m: PointFeatures, moment: torch.Tensor) -> PointFeatures:
+    def forward(self, x: PointFeatures, xn: PointFeatures, m: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
         S, V = self.S, self.V
-        vv = torch.cat([xn.v, m.v, xn.v @ moment], -2)  # (B, N, 3V, 3): own, arrived, M v
+
+        def context(v):  # (B, N, C, 3) -> (B, N, 4C, 3): own, arrived, M v, the cloud's mean of v
+            return [v, v @ geom.moment, _cloud_mean(v, geom.mask).unsqueeze(1).expand_as(v)]
+
+        own_v, moment_v, mean_v = context(xn.v)
+        vv = torch.cat([own_v, m.v, moment_v, mean_v], -2)  # (B, N, 4V, 3)
         if self.handed:
-            aa = torch.cat([xn.a, m.a, xn.a @ moment], -2)  # (B, N, 3V, 3)
+            own_a, moment_a, mean_a = context(xn.a)
+            aa = torch.cat([own_a, m.a, moment_a, mean_a], -2)  # (B, N, 4V, 3)
             w1, w2 = self.pair_v(vv).chunk(2, -2)  # (B, N, V, 3) each
             z = self.pair_a(aa)  # (B, N, V, 3)
             vt = self.mix_v(torch.cat([vv, cross(w2, z)], -2))  # (B, N, V, 3) vector
@@ -419,7 +477,7 @@ class VectorGateLayer(nn.Module):
 
     def forward(self, x: PointFeatures, geom: EdgeGeometry) -> PointFeatures:
         xn = self.norm(x)
-        return self.update(x, xn, self.message(xn, geom), geom.moment)
+        return self.update(x, xn, self.message(xn, geom), geom)
 
 
 # ---------------------------------------------------------------------------------------------
