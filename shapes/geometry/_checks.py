@@ -8,7 +8,7 @@ import torch
 
 from shapes.errors import InputError
 
-__all__ = ["check_last_dim", "check_matrices", "check_count", "shape_of"]
+__all__ = ["check_last_dim", "check_matrices", "check_count", "check_degree", "shape_of"]
 
 
 def shape_of(x) -> str:
@@ -44,4 +44,15 @@ def check_count(n, name: str = "n", minimum: int = 0) -> int:
         value = None
     if value is None or value < minimum:
         raise InputError(f"{name} should be an integer >= {minimum}, got {n!r} instead.")
+    return value
+
+
+def check_degree(l, name: str, maximum: int) -> int:
+    """Require a plain integer harmonic degree in [0, maximum] (bools are refused)."""
+    try:
+        value = None if isinstance(l, bool) else operator.index(l)
+    except TypeError:
+        value = None
+    if value is None or not 0 <= value <= maximum:
+        raise InputError(f"{name} should be an integer in [0, {maximum}], got {l!r} instead.")
     return value

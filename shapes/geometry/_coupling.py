@@ -27,26 +27,19 @@ from __future__ import annotations
 
 import functools
 import math
-import operator
 from fractions import Fraction
 
 import numpy as np
 import torch
 
-from shapes.errors import InputError
+from shapes.geometry._checks import check_degree
 from shapes.geometry._harmonics import L_MAX
 
 __all__ = ["clebsch_gordan", "complex_clebsch_gordan", "real_basis_change"]
 
 
 def _check_degree(l, name: str) -> int:
-    try:
-        value = None if isinstance(l, bool) else operator.index(l)
-    except TypeError:
-        value = None
-    if value is None or not 0 <= value <= L_MAX:
-        raise InputError(f"{name} should be an integer in [0, {L_MAX}], got {l!r} instead.")
-    return value
+    return check_degree(l, name, L_MAX)
 
 
 def complex_clebsch_gordan(j1: int, m1: int, j2: int, m2: int, j3: int, m3: int) -> float:

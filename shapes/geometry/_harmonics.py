@@ -18,12 +18,11 @@ from __future__ import annotations
 
 import functools
 import math
-import operator
 
 import torch
 
 from shapes.errors import InputError
-from shapes.geometry._checks import shape_of
+from shapes.geometry._checks import check_degree, shape_of
 
 __all__ = ["L_MAX", "spherical_harmonics", "harmonics_dim"]
 
@@ -62,13 +61,7 @@ def _coefficients(l_max: int) -> dict:
 
 
 def _check_l_max(l_max) -> int:
-    try:
-        value = None if isinstance(l_max, bool) else operator.index(l_max)
-    except TypeError:
-        value = None
-    if value is None or not 0 <= value <= L_MAX:
-        raise InputError(f"l_max should be an integer in [0, {L_MAX}], got {l_max!r} instead.")
-    return value
+    return check_degree(l_max, "l_max", L_MAX)
 
 
 def spherical_harmonics(l_max: int, vectors: torch.Tensor, normalize: bool = True) -> list[torch.Tensor]:

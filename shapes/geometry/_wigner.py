@@ -18,13 +18,11 @@ matrices: ``D_l(-I) = (-1)^l I``.
 from __future__ import annotations
 
 import functools
-import operator
 
 import numpy as np
 import torch
 
-from shapes.errors import InputError
-from shapes.geometry._checks import check_matrices
+from shapes.geometry._checks import check_degree, check_matrices
 from shapes.geometry._harmonics import L_MAX, spherical_harmonics
 
 __all__ = ["wigner_d", "wigner_d_list"]
@@ -33,13 +31,7 @@ _YZX = [1, 2, 0]  # degree-1 harmonics are (y, z, x)
 
 
 def _check_l(l, name: str = "l") -> int:
-    try:
-        value = None if isinstance(l, bool) else operator.index(l)
-    except TypeError:
-        value = None
-    if value is None or not 0 <= value <= L_MAX:
-        raise InputError(f"{name} should be an integer in [0, {L_MAX}], got {l!r} instead.")
-    return value
+    return check_degree(l, name, L_MAX)
 
 
 @functools.lru_cache(maxsize=None)
