@@ -41,7 +41,7 @@ OUT = Path(__file__).resolve().parent / "results" / "vector_gate.json"
 # Both backbones at their shipped widths (conf/backbone/*.yaml) and vector_gate also at a width
 # at least the harmonic one's, so that "comparable width" holds either way round.
 CASES = {
-    "vector_gate": ("vector_gate", {"scalars": 32, "vectors": 8, "layers": 3, "handedness": True}),
+    "vector_gate": ("vector_gate", {"scalars": 32, "vectors": 8, "layers": 3, "handedness": True}),  # layers as harmonic
     "vector_gate_wide": ("vector_gate", {"scalars": 32, "vectors": 16, "layers": 3, "handedness": True}),
     "harmonic_attention": ("harmonic_attention", {"l_max": 2, "channels": {0: 16, 1: 8, 2: 4}, "layers": 3,
                                                   "parity": "full"}),
