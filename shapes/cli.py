@@ -115,15 +115,15 @@ def _plain(node):
     return OmegaConf.to_container(node, resolve=True) if OmegaConf.is_config(node) else node
 
 
-def _backbone_from_file(name: str):
-    """Instantiate ``conf/backbone/<name>.yaml`` (used by the demo, which trains several)."""
+def _backbone_from_file(name: str, options: dict | None = None):
+    """Instantiate ``conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
     from hydra.utils import instantiate
     from omegaconf import OmegaConf
 
     path = CONF_DIR / "backbone" / f"{name}.yaml"
     if not path.is_file():
         raise ConfigError(f"unknown backbone '{name}'; choose one of: {', '.join(_groups()['backbone'])}.")
-    return instantiate(OmegaConf.load(path))
+    return instantiate(OmegaConf.merge(OmegaConf.load(path), options or {}))
 
 
 def _latest_run(run: str) -> str:
@@ -199,7 +199,8 @@ def _run_demo(cfg) -> None:
     from shapes.demo import run_demo
 
     d = cfg.demo
-    factories = {name: (lambda name=name: _backbone_from_file(name)) for name in d.backbones}
+    options = _plain(d.get("options")) or {}
+    factories = {name: (lambda name=name: _backbone_from_file(name, options.get(name))) for name in d.backbones}
     for name in d.backbones:
         factories[name]()  # fail fast on a bad backbone name, before any work
     report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
