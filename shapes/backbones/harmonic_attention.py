@@ -21,37 +21,44 @@ For receiver ``i`` and its neighbours ``j`` (kNN, or within ``radius`` capped at
 ``r_ij = x_j - x_i``, ``d = |r_ij|`` and path basis
 ``B_P(r_ij)[m_in, m_out] = sum_{m_f} C[l_in, l_f -> l_out][m_in, m_f, m_out] Y_{l_f, m_f}(r_ij / d)``::
 
-    k_ij[t_out] = sum_{P -> t_out} W^K_P ( R^K_P(d) * (B_P(r_ij)^T h_j[t_in]) )   (keys, per channel)
-    v_ij[t_out] = same with W^V_P and R^V_P                                       (values)
-    q_i[t]      = W^Q_t h_i[t]                                                     (queries)
-    a_ij^h      = softmax_j( sum_t <q_i[t], k_ij[t]>_head h / sqrt(d_head) )       (invariant logits)
+    u_ij[P]     = R_P(d) * (B_P(r_ij)^T h_j[t_in])                   (per path, per input channel)
+    k_ij[t_out] = sum_{P -> t_out} W^K_P u_ij[P]                     (keys)
+    v_ij[t_out] = sum_{P -> t_out} W^V_P u_ij[P]                     (values)
+    q_i[t]      = W^Q_t h_i[t]                                        (queries)
+    a_ij^h      = softmax_j( sum_t <q_i[t], k_ij[t]>_head h / sqrt(d_head) )   (invariant logits)
     out_i[t]    = W^O_t sum_j a_ij^{h(c)} v_ij[t]
 
 ``R_P(d)`` is a per-path, per-input-channel radial weight from a small MLP on a Gaussian basis of
-``d``, times a cosine cutoff. ``W_P`` mixes channels. Then a gated point-wise feed-forward block.
-Readout: per point the scalars and pseudo-scalars, the norms of the ``l > 0`` channels and the
-proper-pseudo dot products; masked mean and max over the cloud.
+``d``, times a cosine cutoff; keys and values share it and differ by their channel mixings
+``W^K_P``, ``W^V_P``. Keys exist only for output types the receiver has a query for (in the first
+layer: scalars). Then a gated point-wise feed-forward block. Readout: per point the scalars and
+pseudo-scalars, the norms of the ``l > 0`` channels and the proper-pseudo dot products; masked
+mean and max over the cloud.
 
 The fast path and its cost
 --------------------------
 Channel mixing is separated from the angular part and lifted off the edges. Per input type, one
 batched matmul turns the gathered sender features into ``Z_ij = h_j^T B(r_ij)`` for all its paths
 at once, with the per-edge basis ``B`` built ONCE per forward pass (one GEMM of the concatenated
-harmonics with a fixed coupling matrix) and shared by all layers. Keys are never formed: the query
-is pulled back through ``W^K`` on the receiver (``q~_i = W^K^T q_i``, per node), and the logit is
-``<q~_i, R^K * Z_ij>``. Values are aggregated per head before mixing
-(``A_i^h = sum_j a_ij^h R^V * Z_ij``) and mixed by ``W^V`` per node. With ``C_t`` channels of input
-type ``t``, ``W_l = sum_{pairs of l} (2 l_out + 1)`` basis columns, ``W^K_l`` the key columns and
+harmonics with a fixed coupling matrix) and shared by all layers. The radial GEMM writes its
+weights already spread over the basis columns, and ``u = R * Z`` is the only per-edge feature
+tensor. Keys are never formed: the query is pulled back through ``W^K`` on the receiver
+(``q~_i = W^K^T q_i``, per node), and the logit is ``<q~_i, u_ij>``. Values are aggregated per head
+before mixing (``A_i^h = sum_j a_ij^h u_ij``) and mixed by ``W^V`` per node. The cutoff is a
+per-edge scalar, so it multiplies the logits and the attention weights instead of ``u``. With
+``C_t`` channels of input type ``t``, ``W_l = sum_{pairs of l} (2 l_out + 1)`` basis columns and
 ``H`` heads, the multiply-adds per edge per layer are::
 
-    angular   sum_t C_t (2 l_t + 1) W_{l_t}       radial MLP   hidden (num_radial + n_radial)
-    weighting sum_t C_t (W + W^K)                 logits       H sum_t C_t W^K_{l_t}
-    aggregate H sum_t C_t W_{l_t}
+    angular    sum_t C_t (2 l_t + 1) W_{l_t}        radial   hidden num_radial + (hidden + 1) sum_t C_t W_{l_t}
+    logits     H sum_t C_t W_{l_t}                  aggregate  H sum_t C_t W_{l_t}
 
 and the channel mixing, ``sum_P C_out C_in (2 l_out + 1)`` for keys and values, runs per POINT,
 ``k`` times less often. The dense reference (``reference=True``) builds every per-edge kernel
-``(C_out (2 l_out + 1), C_in (2 l_in + 1))`` explicitly (about ``2 C_out C_in (2 l_in + 1)(2 l_out + 1)``
-per path per edge, for keys and values). :meth:`HarmonicAttentionBackbone.flop_counts` gives both.
+``(C_out (2 l_out + 1), C_in (2 l_in + 1))`` explicitly (about ``3 C_out C_in (2 l_in + 1)(2 l_out + 1)``
+multiply-adds per path per edge to build and apply it, for keys and values).
+:meth:`HarmonicAttentionBackbone.flop_counts` gives both. A naive tensor product with a full
+radial matrix per channel pair and path, the textbook form, costs
+``sum_P C_out C_in (2 l_in + 1)(2 l_out + 1)(2 l_f + 1)`` per edge: the ``L^6`` growth.
 """
 
 from __future__ import annotations
@@ -161,10 +168,9 @@ class EdgeFrame(NamedTuple):
         Cosine cutoff of the edge lengths, 0 on invalid slots.
     harmonics : list of (B, N, k, 2l+1) float
         ``Y_l`` of the edge directions, ``l = 0..2 l_max`` (the reference path uses these).
-    basis : dict, or None
-        ``basis[l_in]`` ``(B, N, k, 2 l_in + 1, W_l)``: angular basis of every path from degree
-        ``l_in``, columns in :func:`angular_pairs` order; ``basis[l_in, cols]``: those columns only
-        (the key paths of a layer that has keys for some paths only). None for the reference.
+    basis : dict l_in -> (B, N, k, 2 l_in + 1, W_l) float, or None
+        Angular basis of every path from degree ``l_in``, columns in :func:`angular_pairs` order
+        (None for the reference, which builds each path's basis itself).
     """
 
     index: torch.Tensor
@@ -183,11 +189,9 @@ class _Group(NamedTuple):
     t_in: tuple
     paths: list  # global path indices, in basis-column order
     widths: list  # basis columns (2 l_out + 1) of each path
-    value_slice: slice  # radial outputs of the value paths: (n_paths, C_in) path-major
+    radial_slice: slice  # radial outputs of these paths: (n_paths, C_in) path-major
     keys: list  # positions in `paths` of the key paths (output type is a query type)
     key_ids: list  # index into the key-weight list of each key path
-    key_slice: slice | None  # radial outputs of the key paths: (n_keys, C_in) path-major
-    key_cols: tuple | None  # basis columns of the key paths when they are not all of them
 
 
 class HarmonicAttentionLayer(nn.Module):
@@ -220,10 +224,10 @@ class HarmonicAttentionLayer(nn.Module):
         self.w_value = nn.ParameterList(weight(p, fan_in) for p in self.paths)  # (C_out, C_in) per path
         self.w_key = nn.ParameterList(weight(self.paths[i], key_fan_in) for i in self.key_paths)
 
-        # Radial outputs: one weight per (path, input channel), values first, then keys.
+        # Radial outputs: one weight per (path, input channel), shared by the key and the value of
+        # the path (they differ by their channel mixing), so one per-edge tensor serves both.
         self.groups: list[_Group] = []
-        value_at = 0
-        key_at = sum(types_in[p.t_in] for p in self.paths)
+        at = 0
         key_pos = {i: n for n, i in enumerate(self.key_paths)}
         for g, (t_in, c_in) in enumerate(types_in.items()):
             ids = [i for i, p in enumerate(self.paths) if p.t_in == t_in]
@@ -233,28 +237,20 @@ class HarmonicAttentionLayer(nn.Module):
                 t_in=t_in,
                 paths=ids,
                 widths=widths,
-                value_slice=slice(value_at, value_at + len(ids) * c_in),
+                radial_slice=slice(at, at + len(ids) * c_in),
                 keys=keys,
                 key_ids=[key_pos[ids[n]] for n in keys],
-                key_slice=slice(key_at, key_at + len(keys) * c_in) if keys else None,
-                key_cols=None,
             )
-            if keys and len(keys) < len(ids):
-                starts = [sum(widths[:n]) for n in range(len(widths))]
-                group = group._replace(key_cols=tuple(c for n in keys for c in range(starts[n], starts[n] + widths[n])))
             # Rows of the radial output layer that give, for every (channel, basis column), the
             # weight of that column's path: the fast path multiplies them straight into Z.
             path_of_col = [n for n, w in enumerate(widths) for _ in range(w)]
-            rows = [value_at + n * c_in + c for c in range(c_in) for n in path_of_col]
-            key_rows = [key_at + m * c_in + c for c in range(c_in) for m, n in enumerate(keys) for _ in range(widths[n])]
+            rows = [at + n * c_in + c for c in range(c_in) for n in path_of_col]
             self.register_buffer(f"rows_{g}", torch.tensor(rows, dtype=torch.long), persistent=False)
-            self.register_buffer(f"key_rows_{g}", torch.tensor(key_rows, dtype=torch.long), persistent=False)
-            value_at += len(ids) * c_in
-            key_at += len(keys) * c_in
+            at += len(ids) * c_in
             self.groups.append(group)
-        self.n_radial = key_at
+        self.n_radial = at
         self.radial_hidden = nn.Sequential(nn.Linear(num_radial, radial_hidden), nn.SiLU())
-        self.radial_out = nn.Linear(radial_hidden, key_at)
+        self.radial_out = nn.Linear(radial_hidden, at)
 
         self.norm = EquivariantNorm(types_in)
         self.query = EquivariantLinear(types_in, types_in)
@@ -291,23 +287,23 @@ class HarmonicAttentionLayer(nn.Module):
             xj = gather_neighbours(x[group.t_in], edges.index)  # (B, N, k, C, 2l+1)
             basis = edges.basis[l_in]  # (B, N, k, 2l+1, W)
             z = xj * basis if l_in == 0 else xj @ basis  # (B, N, k, C, W)
-            weighted.append(z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"rows_{g}")))  # (B, N, k, C*W)
+            u = z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"rows_{g}"))  # (B, N, k, C*W)
+            weighted.append(u)
             if not group.keys:
                 continue
-            if group.key_cols is not None:  # only some paths have keys: their own basis columns
-                basis = edges.basis[l_in, group.key_cols]  # (B, N, k, 2l+1, Wk)
-                z = xj * basis if l_in == 0 else xj @ basis  # (B, N, k, C, Wk)
-            key = z.flatten(-2) * self._radial_columns(hidden, getattr(self, f"key_rows_{g}"))  # (B, N, k, C*Wk)
-            # Pull each query back through its key mixing, on the receiver: q~ = W^K^T q per head.
-            pulled = []
+            # Pull each query back through its key mixing, on the receiver: q~ = W^K^T q per head;
+            # paths without a key (no query of their output type) get zero columns.
+            B, N = u.shape[:2]
+            c_in = self.types_in[group.t_in]
+            pulled = [u.new_zeros(B, N, H, c_in, width) for width in group.widths]
             for n, key_id in zip(group.keys, group.key_ids):
                 t_out = self.paths[group.paths[n]].t_out
                 c_out = self.types_in[t_out]
                 qh = q[t_out].unflatten(2, (H, c_out // H))  # (B, N, H, C_out/H, 2l_out+1)
                 w = self.w_key[key_id].unflatten(0, (H, c_out // H))  # (H, C_out/H, C_in)
-                pulled.append(torch.einsum("bnhom,hoc->bnhcm", qh, w))  # (B, N, H, C_in, 2l_out+1)
-            pulled = torch.cat(pulled, -1).flatten(-2)  # (B, N, H, C*Wk)
-            logits = logits + key @ pulled.transpose(-1, -2)  # (B, N, k, H)
+                pulled[n] = torch.einsum("bnhom,hoc->bnhcm", qh, w)  # (B, N, H, C_in, 2l_out+1)
+            pulled = torch.cat(pulled, -1).flatten(-2)  # (B, N, H, C*W)
+            logits = logits + u @ pulled.transpose(-1, -2)  # (B, N, k, H)
         logits = logits * (edges.envelope[..., None] * self.scale)
         alpha = masked_softmax(logits, edges.valid[..., None], dim=2) * edges.envelope[..., None]  # (B, N, k, H)
         out = {}
@@ -324,16 +320,13 @@ class HarmonicAttentionLayer(nn.Module):
 
     # -- reference ---------------------------------------------------------------------------
 
-    def _path_radial(self, radial: torch.Tensor, path_id: int, key: bool) -> torch.Tensor:
+    def _path_radial(self, radial: torch.Tensor, path_id: int) -> torch.Tensor:
         """Radial weights ``(B, N, k, C_in)`` of one path, read from the shared radial output."""
         for group in self.groups:
             if path_id in group.paths:
                 n = group.paths.index(path_id)
                 c_in = self.types_in[group.t_in]
-                if key:
-                    n, start = group.keys.index(n), group.key_slice.start
-                else:
-                    start = group.value_slice.start
+                start = group.radial_slice.start
                 return radial[..., start + n * c_in : start + (n + 1) * c_in]
         raise AssertionError(f"path {path_id} is in no group")
 
@@ -349,11 +342,11 @@ class HarmonicAttentionLayer(nn.Module):
             cg = clebsch_gordan(l_in, p.l_f, l_out, dtype=radial.dtype, device=radial.device)
             basis = torch.einsum("bnkf,ifo->bnkio", edges.harmonics[p.l_f], cg)  # (B, N, k, 2l_in+1, 2l_out+1)
             xj = gather_neighbours(x[p.t_in], edges.index).flatten(-2)  # (B, N, k, C_in*(2l_in+1))
-            targets = [(values, self.w_value[i], False)]
+            r = self._path_radial(radial, i)  # (B, N, k, C_in), shared by the key and the value
+            targets = [(values, self.w_value[i])]
             if i in self.key_paths:
-                targets.append((keys, self.w_key[self.key_paths.index(i)], True))
-            for store, w, is_key in targets:
-                r = self._path_radial(radial, i, is_key)  # (B, N, k, C_in)
+                targets.append((keys, self.w_key[self.key_paths.index(i)]))
+            for store, w in targets:
                 kernel = torch.einsum("oc,bnkc,bnkij->bnkojci", w, r, basis)  # (B, N, k, C_out, 2l_out+1, C_in, 2l_in+1)
                 kernel = kernel.reshape(B, N, K, c_out * (2 * l_out + 1), c_in * (2 * l_in + 1))
                 y = (kernel @ xj.unsqueeze(-1)).squeeze(-1).unflatten(-1, (c_out, 2 * l_out + 1))  # (B, N, k, C_out, 2l_out+1)
@@ -383,11 +376,10 @@ class HarmonicAttentionLayer(nn.Module):
             l_in = group.t_in[0]
             c_in = self.types_in[group.t_in]
             width = sum(group.widths)
-            key_width = sum(group.widths[n] for n in group.keys)
             angular += c_in * (2 * l_in + 1) * width
-            # the radial GEMM writes its weights already spread over the basis columns
-            weighting += (radial_hidden + 1) * c_in * (width + key_width)
-            logits += H * c_in * key_width
+            # the radial GEMM writes its weights already spread over the basis columns, then one product
+            weighting += (radial_hidden + 1) * c_in * width
+            logits += H * c_in * width if group.keys else 0
             aggregate += H * c_in * width
         radial = radial_hidden * num_radial
         mixing = 0
@@ -424,7 +416,8 @@ class HarmonicAttentionBackbone(Backbone):
         self.l_f_max = max(l_f for pairs in self.pairs.values() for l_f, _ in pairs)
         c0 = c.channels[0]
         # Invariant descriptors -> proper scalars: the only input; filters build everything else.
-        self.embed = nn.Sequential(nn.Linear(3, c0), nn.SiLU(), nn.Linear(c0, c0))
+        self.centroid_rbf = GaussianBasis(c.num_radial, 3.0)  # normalised parts lie within ~3 RMS radii
+        self.embed = nn.Sequential(nn.Linear(c.num_radial + 4, c0), nn.SiLU(), nn.Linear(c0, c0))
         self.rbf = GaussianBasis(c.num_radial, c.cutoff)
         types = {(0, 1): c0}
         layers = []
@@ -438,14 +431,10 @@ class HarmonicAttentionBackbone(Backbone):
         self.symmetry = "SE3" if c.parity == "full" else "E3"
         self.out_features = 2 * invariant_width(types)
 
-    def _coupling_matrix(self, l_in: int, cols, dtype, device) -> torch.Tensor:
-        """Coupling matrix of degree ``l_in`` (all basis columns, or the columns ``cols``), cached."""
-        key = (l_in, cols, dtype, str(device))
+    def _coupling_matrix(self, l_in: int, dtype, device) -> torch.Tensor:
+        key = (l_in, dtype, str(device))
         if key not in self._coupling:
-            m = coupling_matrix(l_in, self.pairs[l_in], self.l_f_max, clebsch_gordan, dtype, device)
-            if cols is not None:
-                m = m.unflatten(-1, (2 * l_in + 1, -1))[..., list(cols)].flatten(-2)
-            self._coupling[key] = m
+            self._coupling[key] = coupling_matrix(l_in, self.pairs[l_in], self.l_f_max, clebsch_gordan, dtype, device)
         return self._coupling[key]
 
     def edge_frame(self, points: torch.Tensor, mask: torch.Tensor, reference: bool = False) -> EdgeFrame:
@@ -462,12 +451,10 @@ class HarmonicAttentionBackbone(Backbone):
         basis = None
         if not reference:
             y = torch.cat(harmonics, -1)  # (B, N, k, (l_f_max+1)^2)
-            needed = [(l, None) for l in self.degrees]
-            needed += sorted({(g.t_in[0], g.key_cols) for layer in self.layers for g in layer.groups if g.key_cols})
-            basis = {}
-            for l, cols in needed:
-                b = (y @ self._coupling_matrix(l, cols, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
-                basis[l if cols is None else (l, cols)] = b
+            basis = {
+                l: (y @ self._coupling_matrix(l, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
+                for l in self.degrees
+            }
         return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis)
 
     def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> list:
@@ -498,14 +485,31 @@ class HarmonicAttentionBackbone(Backbone):
             per_layer.append(h)
         return per_layer, mask
 
-    @staticmethod
-    def _descriptors(points: torch.Tensor, edges: EdgeFrame) -> torch.Tensor:
-        """Invariant per-point inputs ``(B, N, 3)``: centroid distance, mean edge length, |mean offset|."""
+    def _descriptors(self, points: torch.Tensor, edges: EdgeFrame) -> torch.Tensor:
+        """Invariant per-point inputs ``(B, N, num_radial + 4)``, all unchanged by rotations and reflections.
+
+        Gaussians of the distance to the centroid; the mean edge length; and three dimensionless
+        shape numbers of the neighbourhood's second moment ``M = mean_j r_ij r_ij^T``: the length
+        of the mean offset over the mean edge length (about 0 inside a surface, larger at a rim),
+        ``|M|_F / tr M`` (1 on a wire, 1/sqrt 2 on a flat) and ``27 det M / (tr M)^3`` (0 on a
+        flat, 1 for an isotropic blob). Smooth polynomials of ``M``, no eigen-decomposition, so
+        the gradient is finite everywhere.
+        """
         valid = edges.valid.to(points.dtype)
         count = valid.sum(-1).clamp_min(1.0)  # (B, N)
+        r = edges.vectors * valid[..., None]  # (B, N, k, 3)
         mean_length = edges.length.sum(-1) / count  # invalid slots have length 0
-        mean_offset = safe_norm((edges.vectors * valid[..., None]).sum(-2) / count[..., None])
-        return torch.stack([safe_norm(points), mean_length, mean_offset], -1)
+        # Floors far below any real edge (coordinates are in RMS radii) keep empty neighbourhoods finite.
+        offset = safe_norm(r.sum(-2) / count[..., None]) / (mean_length + 1e-6)
+        moment = torch.einsum("bnki,bnkj->bnij", r, r) / count[..., None, None]  # (B, N, 3, 3)
+        trace = moment.diagonal(dim1=-2, dim2=-1).sum(-1) + 1e-12  # (B, N)
+        spread = safe_norm(moment.flatten(-2)) / trace
+        # det as a triple product of rows: a polynomial, so its gradient is finite at singular M
+        det = (moment[..., 0, :] * torch.linalg.cross(moment[..., 1, :], moment[..., 2, :])).sum(-1)
+        volume = 27 * det / trace**3
+        return torch.cat(
+            [self.centroid_rbf(safe_norm(points)), torch.stack([mean_length, offset, spread, volume], -1)], -1
+        )
 
     def flop_counts(self) -> list:
         """Analytic multiply-add counts per layer (see :meth:`HarmonicAttentionLayer.flop_counts`)."""
