@@ -175,7 +175,12 @@ def _run_train(cfg) -> None:
     backbone = instantiate(cfg.backbone)
     settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
                              extra={"config": OmegaConf.to_container(cfg, resolve=True)})
-    ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+    try:
+        ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+    except BaseException:
+        if run_dir.is_dir() and not any(run_dir.iterdir()):
+            run_dir.rmdir()  # Hydra made the folder before the job failed: leave nothing behind
+        raise
     if int(os.environ.get("RANK", "0")) != 0:
         return  # under torchrun only the first process writes and reports
     write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))

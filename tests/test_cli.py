@@ -51,6 +51,13 @@ def test_bad_values_give_one_line(tmp_path, monkeypatch, capsys):
     assert "no checkpoint" in one_error_line(capsys)
 
 
+def test_training_on_a_missing_dataset_leaves_no_run_folder(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["train", f"data={tmp_path / 'nowhere'}"]) == 2
+    assert "meta.json" in one_error_line(capsys)
+    assert not list((tmp_path / "runs" / "train").glob("*"))
+
+
 def test_one_class_folder_is_refused_and_leaves_nothing(tmp_path, monkeypatch, capsys):
     import trimesh
 
