@@ -88,6 +88,19 @@ def _forward_flops(net, edges: int, points: int, reference: bool) -> dict:
     return total
 
 
+def reference_kernel_gb(l_max: int, edges: int) -> float:
+    """float32 GB of the dense per-edge kernels the reference keeps for backward (one copy each)."""
+    from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
+
+    net = HarmonicAttentionBackbone(**CONFIGS[l_max])
+    floats = 0
+    for layer in net.layers:
+        for i, p in enumerate(layer.paths):
+            copies = 2 if i in layer.key_paths else 1
+            floats += copies * layer.types_out[p.t_out] * (2 * p.t_out[0] + 1) * layer.types_in[p.t_in] * (2 * p.t_in[0] + 1)
+    return 4 * floats * edges / 1e9
+
+
 def run(spec: dict) -> dict:
     """Run :func:`worker` in a fresh interpreter and return its result."""
     proc = subprocess.run(
@@ -160,10 +173,12 @@ def main(argv=None) -> None:
         return r
 
     result["full_size_fast"] = {}
+    gb = reference_kernel_gb(2, full["B"] * full["N"] * base["k"])
     result["fast_vs_reference"] = {
         "note": (
-            f"the dense reference keeps every per-edge kernel for backward (tens of GB at B={full['B']}, "
-            f"N={full['N']}), so both run at B={small['B']}, N={small['N']} for the ratio"
+            f"the dense reference keeps every per-edge kernel for backward (about {gb:.0f} GB of float32 "
+            f"kernels alone at B={full['B']}, N={full['N']}, l_max=2), so both run at B={small['B']}, "
+            f"N={small['N']} for the ratio"
         )
     }
     for l_max in CONFIGS:
