@@ -25,7 +25,7 @@ from shapes.errors import ConfigError
 from shapes.geometry import POSE_REGIMES, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
-__all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "CHECKPOINT"]
+__all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "lr_factor", "CHECKPOINT"]
 
 CHECKPOINT = "checkpoint.pt"
 
@@ -44,18 +44,21 @@ class TrainSettings:
     seed: int = 0
     threads: int | None = None  # torch threads; None keeps torch's default
     device: str = "cpu"  # cpu | cuda | auto
-    max_minutes: float | None = None  # stop after this wall time and keep the best checkpoint so far
+    max_minutes: float | None = None  # a wall-time budget: the learning rate anneals to 0 by then and
+    # training stops there, keeping the best checkpoint (epochs is then an upper bound)
     extra: dict = field(default_factory=dict)  # free-form metadata stored in the checkpoint (e.g. resolved config)
 
 
-def _cosine_with_warmup(total: int, warmup: int):
-    def factor(step: int) -> float:
-        if step < warmup:
-            return (step + 1) / warmup
-        t = (step - warmup) / max(total - warmup, 1)
-        return 0.5 * (1.0 + math.cos(math.pi * min(t, 1.0)))
+def lr_factor(progress: float, warmup: float) -> float:
+    """Linear warm-up over the first ``warmup`` share of training, then a cosine down to 0.
 
-    return factor
+    ``progress`` in [0, 1] is the share of training done: of the steps, or of the time budget when
+    that runs out first, so a run cut short by ``max_minutes`` still ends annealed.
+    """
+    if progress < warmup:
+        return max(progress / warmup, 1e-3)
+    t = (progress - warmup) / max(1.0 - warmup, 1e-9)
+    return 0.5 * (1.0 + math.cos(math.pi * min(t, 1.0)))
 
 
 def _distributed() -> tuple[int, int]:
@@ -67,16 +70,20 @@ def _distributed() -> tuple[int, int]:
 
 
 @torch.no_grad()
-def _accuracy(model: nn.Module, points: torch.Tensor, labels: torch.Tensor, poses: str, seed: int,
-              batch_size: int) -> float:
+def _validate(model: nn.Module, points: torch.Tensor, labels: torch.Tensor, poses: str, seed: int,
+              batch_size: int) -> tuple[float, float]:
+    """Accuracy and mean cross-entropy on the validation clouds, each turned by a seeded pose."""
     model.eval()
     gen = torch_generator(seed)
     rot = random_poses(poses, len(points), generator=gen, dtype=points.dtype, device=points.device)
-    correct = 0
+    correct, loss = 0, 0.0
     for start in range(0, len(points), batch_size):
         x = points[start:start + batch_size] @ rot[start:start + batch_size].transpose(-1, -2)
-        correct += int((model(x).argmax(-1) == labels[start:start + batch_size]).sum())
-    return correct / max(len(points), 1)
+        logits, y = model(x), labels[start:start + batch_size]
+        correct += int((logits.argmax(-1) == y).sum())
+        loss += float(nn.functional.cross_entropy(logits, y, reduction="sum"))
+    n = max(len(points), 1)
+    return correct / n, loss / n
 
 
 def save_checkpoint(path: Path, model: Classifier, meta: dict) -> Path:
@@ -119,7 +126,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                              {"params": no_decay, "weight_decay": 0.0}], lr=s.lr)
     steps_per_epoch = math.ceil(len(x_train) / (s.batch_size * world))
     total = steps_per_epoch * s.epochs
-    sched = torch.optim.lr_scheduler.LambdaLR(opt, _cosine_with_warmup(total, max(1, int(s.warmup * total))))
+    budget = 60.0 * s.max_minutes if s.max_minutes else math.inf  # seconds
     gen = torch_generator(s.seed)  # the same on every rank: see the permutation below
     loss_fn = nn.CrossEntropyLoss()
 
@@ -134,7 +141,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         "versions": versions(),
         **s.extra,
     }
-    history, best, started = [], -1.0, time.perf_counter()
+    history, best, started, step, out_of_time = [], (-1.0, -math.inf), time.perf_counter(), 0, False
     ckpt = run_dir / CHECKPOINT
     for epoch in range(1, s.epochs + 1):
         net.train()
@@ -144,6 +151,17 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         order = order[: len(order) // world * world][rank::world].to(device)
         losses, t0 = [], time.perf_counter()
         for start in progress(range(0, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
+            elapsed = time.perf_counter() - started
+            if world > 1:  # every rank must take the same number of steps: rank 0's clock decides
+                flag = torch.tensor([float(elapsed)], device=device)
+                torch.distributed.broadcast(flag, 0)
+                elapsed = float(flag)
+            progress_done = min(max(step / total, elapsed / budget), 1.0)
+            if progress_done >= 1.0 and step > 0:  # at least one step, so there is a checkpoint
+                out_of_time = True
+                break
+            for group in opt.param_groups:
+                group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
             idx = order[start:start + s.batch_size]
             rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
             x = x_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
@@ -154,22 +172,28 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             loss.backward()
             nn.utils.clip_grad_norm_(model.parameters(), 5.0)
             opt.step()
-            sched.step()
+            step += 1
             losses.append(float(loss.detach()))
-        val_acc = _accuracy(model, x_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
-        row = {"epoch": epoch, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
-               "seconds": time.perf_counter() - t0, "lr": sched.get_last_lr()[0]}
+        if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
+            break
+        val_acc, val_loss = _validate(model, x_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
+        row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
+               "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
         history.append(row)
         if rank == 0:
-            print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f}  ({row['seconds']:.1f} s)", flush=True)
-            if val_acc > best:
-                best = val_acc
-                save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc})
-            write_json(run_dir / "train_history.json", {"history": history, "best_val_accuracy": best,
+            print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f} (loss {val_loss:.3f})  "
+                  f"({row['seconds']:.1f} s)", flush=True)
+            # the validation split is small: among equal accuracies the lower loss is the surer model
+            if (val_acc, -val_loss) > best:
+                best = (val_acc, -val_loss)
+                save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
+                                              "val_loss": val_loss})
+            write_json(run_dir / "train_history.json", {"history": history, "best_val_accuracy": best[0],
                                                         "wall_seconds": time.perf_counter() - started})
-        if s.max_minutes and time.perf_counter() - started > 60 * s.max_minutes:
+        if out_of_time:
             if rank == 0:
-                print(f"stopping after {epoch} epochs: train.max_minutes={s.max_minutes} reached", flush=True)
+                print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
+                      "(the learning rate had annealed to 0 by then)", flush=True)
             break
     if world > 1:
         torch.distributed.barrier()

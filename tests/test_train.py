@@ -1,0 +1,56 @@
+"""The training job's schedule and its wall-time budget."""
+
+import json
+import math
+from pathlib import Path
+
+import pytest
+import torch
+
+from shapes.backbones import build_backbone
+from shapes.cli import main
+from shapes.train import TrainSettings, lr_factor, train_classifier
+
+DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
+
+
+@pytest.mark.parametrize("progress", [0.0, 0.1, 0.25, 0.5, 0.8, 1.0])
+def test_lr_factor_is_a_cosine_after_warmup(progress):
+    # closed form: half-cosine annealing 0.5 (1 + cos(pi t)) over the post-warm-up share t
+    warmup = 0.1
+    got = lr_factor(progress, warmup)
+    if progress < warmup:
+        assert got == pytest.approx(max(progress / warmup, 1e-3))  # linear ramp
+    else:
+        t = (progress - warmup) / (1 - warmup)
+        assert got == pytest.approx(0.5 * (1 + math.cos(math.pi * t)), abs=1e-12)
+    assert lr_factor(1.0, warmup) == pytest.approx(0.0, abs=1e-12)  # annealed to 0 at the end
+
+
+@pytest.fixture(scope="module")
+def tiny_data(tmp_path_factory):
+    root = tmp_path_factory.mktemp("train")
+    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64",
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+    return root / "data"
+
+
+def _backbone():
+    return build_backbone("distance", hidden=8, k=4, layers=1)
+
+
+def test_an_exhausted_budget_stops_after_one_step_with_a_checkpoint(tiny_data, tmp_path):
+    # a budget of about a microsecond is spent before the second step can start
+    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+                            TrainSettings(epochs=5, batch_size=4, max_minutes=1e-8, threads=1))
+    history = json.loads((tmp_path / "train_history.json").read_text())["history"]
+    assert [row["steps"] for row in history] == [1]
+    assert torch.load(ckpt, weights_only=True)["meta"]["epoch"] == 1
+
+
+def test_without_a_budget_every_epoch_runs(tiny_data, tmp_path):
+    train_classifier(_backbone(), tiny_data, tmp_path, TrainSettings(epochs=2, batch_size=8, threads=1))
+    history = json.loads((tmp_path / "train_history.json").read_text())["history"]
+    n_train = 16 * 4  # classes x training instances (one copy each): at least that many clouds
+    assert len(history) == 2 and history[-1]["steps"] == 2 * history[0]["steps"] >= 2 * n_train // 8
+    assert history[-1]["lr"] < history[0]["lr"]  # annealing
