@@ -12,8 +12,9 @@ import pytest
 import trimesh
 
 from shapes.errors import ConfigError, InputError, ShapesError
-from shapes.parts import FAMILIES, HANDED_FAMILIES, build_part, mirror_mesh
+from shapes.parts import FAMILIES, HANDED_FAMILIES, build_part, demo_catalog_spec, mirror_mesh
 from shapes.parts._ply import ply_bytes
+from shapes.parts._standards import CLEARANCE_HOLE_ISO273, VBELT_GROOVE_ISO4183
 
 SQRT3 = math.sqrt(3.0)
 
@@ -89,6 +90,12 @@ NUTS = [  # source: ISO 4032 (FACTS.md): s across flats, m height, e_min across 
     ("M6", 10.0, 5.2, 11.05, 6.0, 1.0),
     ("M8", 13.0, 6.8, 14.38, 8.0, 1.25),
     ("M10", 16.0, 8.4, 17.77, 10.0, 1.5),
+    # from memory (ISO 4032 and ISO 261, not in FACTS.md); e_min is re-checked by the hexagon
+    # itself: e = 2 s / sqrt 3 must exceed it
+    ("M5", 8.0, 4.7, 8.79, 5.0, 0.8),
+    ("M12", 18.0, 10.8, 20.03, 12.0, 1.75),
+    ("M14", 21.0, 12.8, 23.36, 14.0, 2.0),
+    ("M16", 24.0, 14.8, 26.75, 16.0, 2.0),
 ]
 
 
@@ -128,6 +135,10 @@ WASHERS = [  # source: ISO 7089 (FACTS.md): d1 / d2 / h
     ("M6", 6.4, 12.0, 1.6),
     ("M8", 8.4, 16.0, 1.6),
     ("M10", 10.5, 20.0, 2.0),
+    ("M5", 5.3, 10.0, 1.0),  # from memory (ISO 7089)
+    ("M12", 13.0, 24.0, 2.5),  # from memory (ISO 7089)
+    ("M14", 15.0, 28.0, 2.5),  # from memory (ISO 7089)
+    ("M16", 17.0, 30.0, 3.0),  # from memory (ISO 7089)
 ]
 
 
@@ -144,6 +155,29 @@ def test_washer_dimensions_and_volume(size, d1, d2, h, segments):
     deficit = 1.0 - polygon_factor(segments)
     assert mesh.volume == pytest.approx(closed * (1.0 - deficit), rel=1e-5)
     assert closed * (1.0 - 1.001 * deficit) <= mesh.volume <= closed
+
+
+@pytest.mark.parametrize("size,d1,d2,h", WASHERS)
+def test_chamfered_washer_profile_and_volume(size, d1, d2, h):
+    n = 96
+    mesh = build_part("plain_washer", size=size, chamfered=True, segments=n)
+    rim = 3.0 / 8.0 * h  # from memory (ISO 7090): h/4 to h/2 of the rim stays square; we take the middle
+    run = (h - rim) / math.tan(math.radians(30.0))  # from memory (ISO 7090): chamfer 30 degrees to the face
+    r, z = radius_xy(mesh), mesh.vertices[:, 2]
+    assert 2.0 * r.min() == pytest.approx(d1, abs=1e-4) and 2.0 * r.max() == pytest.approx(d2, abs=1e-4)
+    assert np.ptp(z) == pytest.approx(h, abs=1e-5)
+    assert r[np.abs(z - h) < 1e-6].max() == pytest.approx(d2 / 2.0 - run, abs=1e-4)  # top face ends where the chamfer starts
+    assert z[np.abs(r - d2 / 2.0) < 1e-4].max() == pytest.approx(rim, abs=1e-5)
+    # reference: Pappus, volume = 2 pi * (area of the profile) * (radius of its centroid); the
+    # faceted solid keeps polygon_factor of it as every slice is an inscribed n-gon
+    prof = np.array([(d1 / 2, 0.0), (d2 / 2, 0.0), (d2 / 2, rim), (d2 / 2 - run, h), (d1 / 2, h)])
+    x, y = prof[:, 0], prof[:, 1]
+    cross = x * np.roll(y, -1) - np.roll(x, -1) * y
+    area = cross.sum() / 2.0  # reference: shoelace formula
+    x_c = ((x + np.roll(x, -1)) * cross).sum() / (6.0 * area)
+    assert mesh.volume == pytest.approx(2.0 * math.pi * area * x_c * polygon_factor(n), rel=1e-5)
+    flat = build_part("plain_washer", size=size, segments=n)
+    assert mesh.volume < flat.volume
 
 
 def test_bushing_volume_plain_and_flanged():
@@ -237,11 +271,23 @@ def test_helical_gear_tip_diameter_and_hand(hand, sign):
 # ---------------------------------------------------------------- ISO 68-1 / ISO 261 threads
 
 
-@pytest.mark.parametrize("size,d,pitch", [("M6", 6.0, 1.0), ("M8", 8.0, 1.25), ("M10", 10.0, 1.5)])
-def test_thread_pitch_depth_and_hand(size, d, pitch):
-    b = 10.0
-    right = build_part("threaded_stud", size=size, length=40.0, thread_length=b, hand="right")
-    left = build_part("threaded_stud", size=size, length=40.0, thread_length=b, hand="left")
+THREADS = [  # source: ISO 261 coarse pitch (FACTS.md)
+    ("M6", 6.0, 1.0, 24),
+    ("M8", 8.0, 1.25, 24),
+    ("M10", 10.0, 1.5, 24),
+    ("M5", 5.0, 0.8, 16),  # from memory (ISO 261); 16 columns as in the demo catalog
+    ("M12", 12.0, 1.75, 16),  # from memory (ISO 261)
+    ("M14", 14.0, 2.0, 16),  # from memory (ISO 261)
+    ("M16", 16.0, 2.0, 16),  # from memory (ISO 261)
+]
+
+
+@pytest.mark.parametrize("size,d,pitch,columns", THREADS)
+def test_thread_pitch_depth_and_hand(size, d, pitch, columns):
+    b = max(10.0, 7.0 * pitch)  # at least 3 whole turns inside the checked zone
+    length = 2.0 * b + 20.0
+    right = build_part("threaded_stud", size=size, length=length, thread_length=b, hand="right", columns=columns)
+    left = build_part("threaded_stud", size=size, length=length, thread_length=b, hand="left", columns=columns)
     h = SQRT3 / 2.0 * pitch  # source: ISO 68-1, H = (sqrt 3 / 2) P
     for mesh, sign in ((right, 1.0), (left, -1.0)):
         v = mesh.vertices
@@ -265,15 +311,54 @@ def test_thread_pitch_depth_and_hand(size, d, pitch):
         assert np.sign(helicity(mesh)) == -sign
 
 
-def test_spring_hand_and_size():
-    right = build_part("compression_spring", wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, hand="right")
-    left = build_part("compression_spring", wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, hand="left")
+@pytest.mark.parametrize("per_turn", [20, 16])  # the default and the demo catalog's tessellation
+@pytest.mark.parametrize("ground", [True, False])
+def test_spring_hand_and_size(per_turn, ground):
+    kw = dict(wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, ground=ground, per_turn=per_turn)
+    right = build_part("compression_spring", hand="right", **kw)
+    left = build_part("compression_spring", hand="left", **kw)
     assert 2.0 * radius_xy(right).max() == pytest.approx(12.0 + 1.6, abs=0.01)  # outer diameter D + d
     assert 2.0 * radius_xy(right).min() == pytest.approx(12.0 - 1.6, abs=0.05)  # inner diameter D - d
-    assert right.vertices[:, 2].min() == pytest.approx(0.0, abs=1e-6)  # ground end sits on z = 0
+    if ground:
+        assert right.vertices[:, 2].min() == pytest.approx(0.0, abs=1e-6)  # ground end sits on z = 0
+    else:  # the round wire rests on z = 0 (a polygonal section: its lowest vertex a little above)
+        assert 0.0 <= right.vertices[:, 2].min() < 0.05 * 1.6
     assert helicity(right) < -0.01 and helicity(left) > 0.01  # FACTS.md: right hand turns CCW rising
     for family in ("spur_gear", "hex_nut", "v_pulley", "bolted_flange"):  # achiral parts: no helicity
         assert abs(helicity(build_part(family))) < 1e-3
+
+
+# ---------------------------------------------------------------- ISO 4183 V-belt grooves, ISO 273 holes
+
+GROOVES = [  # from memory (ISO 4183): width at the rim b1, depth c + t, groove angle
+    ("SPZ", 9.7, 2.0 + 9.0, 34.0),
+    ("SPA", 12.7, 2.75 + 11.0, 38.0),
+]
+
+
+@pytest.mark.parametrize("section,b1,depth,deg", GROOVES)
+def test_pulley_grooves_follow_the_belt_section(section, b1, depth, deg):
+    g = VBELT_GROOVE_ISO4183[section]
+    assert g["b1"] == b1 and g["c"] + g["t"] == pytest.approx(depth)
+    od, hub_h = 150.0, 8.0
+    mesh = build_part("v_pulley", outer_d=od, bore_d=20.0, grooves=2, groove_top_w=b1, groove_depth=depth,
+                      groove_deg=deg, hub_d=40.0, hub_h=hub_h)
+    r, z = radius_xy(mesh), mesh.vertices[:, 2]
+    edges = np.unique(np.round(z[np.abs(r - od / 2.0) < 1e-4], 4))  # rim: faces and groove edges
+    assert len(edges) == 6 and edges[2] - edges[1] == pytest.approx(b1, abs=1e-3) and edges[4] - edges[3] == pytest.approx(b1, abs=1e-3)
+    floor = np.unique(np.round(z[np.abs(r - (od / 2.0 - depth)) < 1e-4], 4))  # groove bottoms
+    bottom = b1 - 2.0 * depth * math.tan(math.radians(deg / 2.0))  # reference: trapezoid of included angle deg
+    assert len(floor) == 4 and floor[1] - floor[0] == pytest.approx(bottom, abs=1e-3)
+    assert floor[0] - edges[1] == pytest.approx((b1 - bottom) / 2.0, abs=1e-3)  # symmetric flanks
+
+
+def test_catalog_holes_are_iso273_clearance_holes():
+    medium = {3.4, 4.5, 5.5, 6.6, 9.0, 11.0, 13.5, 17.5}  # from memory (ISO 273, medium series, M3..M16)
+    assert set(CLEARANCE_HOLE_ISO273.values()) == medium
+    assert CLEARANCE_HOLE_ISO273["M6"] == 6.6 and CLEARANCE_HOLE_ISO273["M8"] == 9.0  # common practice
+    spec = {c["name"]: c for c in demo_catalog_spec(0)}
+    for name in ("bolted_flange", "bracket_right"):
+        assert {i["params"]["hole_d"] for i in spec[name]["instances"]} <= medium
 
 
 # ---------------------------------------------------------------- bad parameters
@@ -283,7 +368,10 @@ def test_spring_hand_and_size():
     "family,params,error,words",
     [
         ("no_such_part", {}, ConfigError, ["unknown part family", "'no_such_part'", "hex_nut"]),
-        ("hex_nut", {"size": "M7"}, ConfigError, ["size", "'M7'", "M6, M8, M10"]),
+        ("hex_nut", {"size": "M7"}, ConfigError, ["size", "'M7'", "M5, M6, M8, M10, M12, M14, M16"]),
+        ("plain_washer", {"size": "M4", "chamfered": True}, InputError, ["ISO 7090", "M5", "M4"]),
+        ("plain_washer", {"chamfered": "yes"}, InputError, ["chamfered", "true or false", "'yes'"]),
+        ("v_pulley", {"outer_d": 60.0, "hub_d": 35.0}, InputError, ["hub_d", "outer_d - 3 * groove_depth - 2", "35"]),
         ("ball_bearing", {"designation": "6999"}, ConfigError, ["designation", "'6999'", "6205"]),
         ("spur_gear", {"module": 1.1}, ConfigError, ["module", "1.1", "1.25"]),
         ("compression_spring", {"wire_d": -1.0}, InputError, ["wire_d", "> 0", "-1"]),

@@ -21,12 +21,19 @@ from shapes.parts import (
     is_rotation_of,
     mirror_mesh,
 )
+from shapes.parts._standards import COARSE_PITCH_ISO261
 
 SPEC = {c["name"]: c for c in demo_catalog_spec(0)}
 HANDED = [c["name"] for c in SPEC.values() if c["handed"] and c["instances"][0]["params"]["hand"] == "right"]
 ACHIRAL = [c["name"] for c in SPEC.values() if not c["handed"]]
-# The subtlest handed instance is the long stud with short threads; use it for the stud pair.
-PICK = {"stud_rh": 1}
+# The subtlest handed instance is a stud: only its threads tell it from its mirror image, so the
+# mirror residual (relative to the part's size) goes with threaded share x pitch / length. Use the
+# stud where that is smallest (ISO 261 pitches from the generator's own table).
+_STUDS = [i["params"] for i in SPEC["stud_rh"]["instances"]]
+PICK = {"stud_rh": min(
+    range(len(_STUDS)),
+    key=lambda k: 2.0 * _STUDS[k]["thread_length"] * COARSE_PITCH_ISO261[_STUDS[k]["size"]]["P"] / _STUDS[k]["length"] ** 2,
+)}
 
 
 @functools.lru_cache(maxsize=None)
@@ -81,9 +88,17 @@ def test_achiral_part_mirror_is_a_rotation(name):
     assert not is_chiral(mesh)
 
 
+def _index(name: str, **params) -> int:
+    return next(k for k, i in enumerate(SPEC[name]["instances"]) if params.items() <= i["params"].items())
+
+
 def test_different_parts_are_not_rotations_of_each_other():
-    assert not is_rotation_of(instance("hex_nut", 0), instance("hex_nut", 2))  # M6 vs M8: sizes differ
-    assert not is_rotation_of(instance("spur_gear", 0), instance("spur_gear", 1))  # 23 vs 37 teeth
+    m5, m6 = _index("hex_nut", size="M5", chamfer="both"), _index("hex_nut", size="M6", chamfer="both")
+    assert not is_rotation_of(instance("hex_nut", m5), instance("hex_nut", m6))  # sizes differ
+    teeth = [i["params"]["teeth"] for i in SPEC["spur_gear"]["instances"]]
+    few, many = teeth.index(min(teeth)), teeth.index(max(teeth))
+    assert not is_rotation_of(instance("spur_gear", few), instance("spur_gear", many))  # tooth counts differ
+    assert is_rotation_of(instance("spur_gear", few), posed(instance("spur_gear", few), 5))  # and the same gear is
 
 
 def test_find_mirror_twins_recovers_catalog_map_on_subset():

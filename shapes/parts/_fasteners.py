@@ -1,4 +1,4 @@
-"""Hex nuts (ISO 4032) and plain washers (ISO 7089).
+"""Hex nuts (ISO 4032) and plain washers (ISO 7089, chamfered version ISO 7090).
 
 The nut has a plain bore at the minor diameter of its internal thread, D1 = D - 1.0825 P
 (ISO 68-1: D1 = D - 2 * 5H/8); the thread itself is not modelled.
@@ -11,9 +11,10 @@ import math
 import manifold3d as mf
 import trimesh
 
+from shapes.errors import InputError
 from shapes.parts import _check as check
 from shapes.parts._mesh import to_trimesh
-from shapes.parts._standards import COARSE_PITCH_ISO261, HEX_NUT_ISO4032, WASHER_ISO7089
+from shapes.parts._standards import COARSE_PITCH_ISO261, HEX_NUT_ISO4032, WASHER_CHAMFER_ISO7090, WASHER_ISO7089
 
 __all__ = ["hex_nut", "plain_washer", "hex_prism", "minor_diameter"]
 
@@ -53,7 +54,7 @@ def hex_nut(size: str = "M8", chamfer: str = "both", segments: int = 48) -> trim
 
     Parameters
     ----------
-    size : one of ``HEX_NUT_ISO4032`` (``"M6"``, ``"M8"``, ``"M10"``)
+    size : one of ``HEX_NUT_ISO4032`` (``"M5"`` .. ``"M16"``)
     chamfer : ``"both"``, ``"one"`` (bottom face only) or ``"none"``: the 30 degree bearing-face chamfer
     segments : facets of the bore circle
     """
@@ -69,17 +70,32 @@ def hex_nut(size: str = "M8", chamfer: str = "both", segments: int = 48) -> trim
     return to_trimesh(body - bore)
 
 
-def plain_washer(size: str = "M8", segments: int = 96) -> trimesh.Trimesh:
-    """ISO 7089 plain washer: annulus d1..d2, thickness h on z in [0, h].
+def plain_washer(size: str = "M8", chamfered: bool = False, segments: int = 96) -> trimesh.Trimesh:
+    """ISO 7089 plain washer, or its chamfered version ISO 7090: annulus d1..d2, thickness h on z in [0, h].
+
+    The ISO 7090 chamfer is on the outside edge of the top face, 30 degrees to the face, leaving
+    3h/8 of the rim square (``WASHER_CHAMFER_ISO7090``).
 
     Parameters
     ----------
-    size : one of ``WASHER_ISO7089`` (``"M4"`` .. ``"M12"``)
+    size : one of ``WASHER_ISO7089`` (``"M4"`` .. ``"M16"``; ISO 7090 starts at M5)
+    chamfered : ISO 7090 (True) or the flat ISO 7089 washer (False)
     segments : facets of each circle (vertices lie on the true circles)
     """
     check.choice("plain_washer", "size", size, WASHER_ISO7089)
+    chamfered = check.boolean("plain_washer", "chamfered", chamfered)
     segments = check.integer("plain_washer", "segments", segments, 12, 1024)
     dims = WASHER_ISO7089[size]
     r1, r2, h = dims["d1"] / 2.0, dims["d2"] / 2.0, dims["h"]
-    section = mf.CrossSection([[(r1, 0.0), (r2, 0.0), (r2, h), (r1, h)]])
-    return to_trimesh(mf.Manifold.revolve(section, segments))
+    if not chamfered:
+        outline = [(r1, 0.0), (r2, 0.0), (r2, h), (r1, h)]
+    else:
+        sizes = list(WASHER_ISO7089)
+        if sizes.index(size) < sizes.index(WASHER_CHAMFER_ISO7090["from"]):
+            raise InputError(
+                f"plain_washer: chamfered (ISO 7090) size should be {WASHER_CHAMFER_ISO7090['from']} or larger, got {size} instead."
+            )
+        rim = WASHER_CHAMFER_ISO7090["rim"] * h
+        run = (h - rim) / math.tan(math.radians(WASHER_CHAMFER_ISO7090["deg"]))  # radial width of the chamfer
+        outline = [(r1, 0.0), (r2, 0.0), (r2, rim), (r2 - run, h), (r1, h)]
+    return to_trimesh(mf.Manifold.revolve(mf.CrossSection([outline]), segments))

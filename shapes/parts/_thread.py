@@ -119,7 +119,7 @@ def threaded_stud(
 
     Parameters
     ----------
-    size : ``"M6"``, ``"M8"`` or ``"M10"`` (ISO 261 coarse pitch)
+    size : one of ``COARSE_PITCH_ISO261`` (``"M5"`` .. ``"M16"``, ISO 261 coarse pitch)
     length : overall length
     thread_length : threaded length at each end
     hand : ``"right"`` or ``"left"``

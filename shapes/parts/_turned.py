@@ -138,7 +138,7 @@ def v_pulley(
     hub_d, hub_h = check.positive(f, "hub_d", hub_d), check.positive(f, "hub_h", hub_h)
     segments = check.integer(f, "segments", segments, 16, 512)
     check.less_than(f, "bore_d", bore_d, "hub_d", hub_d)
-    check.less_than(f, "hub_d", hub_d, "outer_d - 2.5 * groove_depth", outer_d - 2.5 * groove_depth)
+    check.less_than(f, "hub_d", hub_d, "outer_d - 3 * groove_depth - 2", outer_d - 3.0 * groove_depth - 2.0)  # hub inside the rim
     bottom_w = groove_top_w - 2.0 * groove_depth * math.tan(math.radians(groove_deg / 2.0))
     if bottom_w <= 0.1:
         raise InputError(

@@ -29,7 +29,7 @@ __all__ = ["Alignment", "align_rigid", "is_rotation_of", "is_chiral", "find_mirr
 
 # Relative residual below which two surfaces count as the same up to a rotation. Measured on every
 # instance of the demo catalog (mirror image in a random pose): achiral parts align to
-# 3e-5..4e-4, the subtlest handed parts (long studs with short threads) stay >= 4e-3.
+# 3e-5..4e-4, the subtlest handed parts (long studs with short threads) stay >= 3e-3.
 DEFAULT_TOL = 1.2e-3
 _DENSE = 64000  # samples of the distance oracle: its error falls ~1/count (measured 5e-4 mm here)
 _GAP = 0.1  # principal moments closer than 10 % are treated as equal (axis ill-defined)
