@@ -25,7 +25,7 @@ from shapes.errors import ConfigError
 from shapes.geometry import POSE_REGIMES, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
-__all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "lr_factor", "CHECKPOINT"]
+__all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins", "CHECKPOINT"]
 
 CHECKPOINT = "checkpoint.pt"
 
@@ -39,6 +39,9 @@ class TrainSettings:
     warmup: float = 0.05  # fraction of steps with a linear ramp-up, so early large gradients don't derail
     poses: str = "aligned"  # aligned | z | so3: how training clouds are turned each step
     jitter: float = 0.0  # Gaussian noise (in RMS radii) added to training points; 0 keeps CAD clean
+    mirror: float = 0.0  # share of training clouds reflected (x -> -x) and labelled as their mirror
+    # twin (achiral classes keep theirs): the very same points under both hands, so a model cannot
+    # tell twins apart by anything but their handedness
     head_hidden: int = 128  # width of the shared head
     dropout: float = 0.1  # in the head only
     seed: int = 0
@@ -67,6 +70,18 @@ def _distributed() -> tuple[int, int]:
     if world > 1 and not torch.distributed.is_initialized():
         torch.distributed.init_process_group("nccl" if torch.cuda.is_available() else "gloo")
     return rank, world
+
+
+def reflect_to_twins(points: torch.Tensor, labels: torch.Tensor, twin_of: torch.Tensor,
+                     chosen: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Mirror the chosen clouds in the plane x = 0 and relabel them as their mirror twins.
+
+    points : (B, N, 3); labels : (B,) class indices; twin_of : (C,) index of each class's twin (itself
+    for an achiral class); chosen : (B,) bool. Returns new (points, labels); the others are untouched.
+    """
+    flipped = points * points.new_tensor([-1.0, 1.0, 1.0])  # (B, N, 3)
+    return (torch.where(chosen[:, None, None], flipped, points),
+            torch.where(chosen, twin_of[labels], labels))
 
 
 @torch.no_grad()
@@ -104,6 +119,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     s = settings or TrainSettings()
     if s.poses not in ("aligned", "z", "so3"):
         raise ConfigError(f"train.poses should be one of aligned, z, so3; got '{s.poses}'.")
+    if not 0.0 <= s.mirror <= 1.0:
+        raise ConfigError(f"train.mirror should be a share between 0 and 1, got {s.mirror}.")
     if s.epochs < 1 or s.batch_size < 1:
         raise ConfigError(f"train.epochs and train.batch_size must be >= 1, got {s.epochs} and {s.batch_size}.")
     set_threads(s.threads)
@@ -117,6 +134,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     y_train = torch.as_tensor(train.labels, dtype=torch.long, device=device)
     x_val = torch.as_tensor(val.points, dtype=torch.float32, device=device)
     y_val = torch.as_tensor(val.labels, dtype=torch.long, device=device)
+    classes = list(meta["classes"])
+    twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes], device=device)  # (C,)
 
     model = Classifier(backbone, len(meta["classes"]), hidden=s.head_hidden, dropout=s.dropout).to(device)
     net = nn.parallel.DistributedDataParallel(model) if world > 1 else model
@@ -164,10 +183,13 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
             idx = order[start:start + s.batch_size]
             rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
-            x = x_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
+            x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
+            if s.mirror > 0:
+                chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
+                x, y = reflect_to_twins(x, y, twin_of, chosen)
             if s.jitter > 0:
                 x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
-            loss = loss_fn(net(x), y_train[idx])
+            loss = loss_fn(net(x), y)
             opt.zero_grad(set_to_none=True)
             loss.backward()
             nn.utils.clip_grad_norm_(model.parameters(), 5.0)

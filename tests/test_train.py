@@ -9,7 +9,7 @@ import torch
 
 from shapes.backbones import build_backbone
 from shapes.cli import main
-from shapes.train import TrainSettings, lr_factor, train_classifier
+from shapes.train import TrainSettings, lr_factor, reflect_to_twins, train_classifier
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 
@@ -54,3 +54,34 @@ def test_without_a_budget_every_epoch_runs(tiny_data, tmp_path):
     n_train = 16 * 4  # classes x training instances (one copy each): at least that many clouds
     assert len(history) == 2 and history[-1]["steps"] == 2 * history[0]["steps"] >= 2 * n_train // 8
     assert history[-1]["lr"] < history[0]["lr"]  # annealing
+
+
+def test_mirror_option_is_validated(tiny_data, tmp_path):
+    from shapes.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="train.mirror"):
+        train_classifier(_backbone(), tiny_data, tmp_path, TrainSettings(epochs=1, mirror=1.5))
+
+
+def test_mirror_training_runs_and_is_recorded(tiny_data, tmp_path):
+    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+                            TrainSettings(epochs=1, batch_size=16, mirror=0.5, threads=1))
+    assert torch.load(ckpt, weights_only=True)["meta"]["train"]["mirror"] == 0.5
+
+
+def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
+    meta = json.loads((tiny_data / "meta.json").read_text())
+    classes = meta["classes"]
+    twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes])
+    labels = torch.tensor([classes.index(n) for n in ("stud_rh", "bracket_left", "hex_nut", "spring_rh")])
+    points = torch.randn(4, 10, 3, dtype=torch.float64)
+    chosen = torch.tensor([True, True, True, False])
+    x, y = reflect_to_twins(points, labels, twin_of, chosen)
+    assert [classes[i] for i in y] == ["stud_lh", "bracket_right", "hex_nut", "spring_rh"]
+    # a reflection: determinant -1, and twice is the identity (closed form: diag(-1, 1, 1))
+    reflection = torch.diag(torch.tensor([-1.0, 1.0, 1.0], dtype=torch.float64))
+    assert torch.linalg.det(reflection) == -1
+    torch.testing.assert_close(x[:3], points[:3] @ reflection.T, rtol=0, atol=0)
+    torch.testing.assert_close(x[3], points[3], rtol=0, atol=0)
+    x2, y2 = reflect_to_twins(x, y, twin_of, chosen)
+    assert torch.equal(x2, points) and torch.equal(y2, labels)
