@@ -247,3 +247,19 @@ def test_seed_changes_free_parameters_only():
 def test_summarize_missing_folder_raises(tmp_path):
     with pytest.raises(DataError, match="catalog file should exist"):
         summarize_catalog(tmp_path / "nothing")
+
+
+def test_design_helpers_spread_levels_and_strata():
+    from shapes.parts._design import grid_strata, level_counts, levels, pick_spread, strata
+
+    # hand-worked: 12 over 7 sizes gives 1 each plus 5 spare, to the ends first (0, 6, 1, 5, 2)
+    assert level_counts(7, 12) == [2, 2, 2, 1, 1, 2, 2]
+    assert level_counts(3, 12) == [4, 4, 4] and level_counts(4, 3) == [1, 1, 0, 1]  # order 0, 3, 1
+    assert levels("ab", 3) == ["a", "a", "b"]
+    assert pick_spread(list(range(12)), 4) == [0, 4, 7, 11]  # round(linspace(0, 11, 4)) = 0, 3.67, 7.33, 11
+    gen = np.random.default_rng(0)
+    v = strata(gen, 12, 6.0, 30.0)
+    assert sorted(np.floor((v - 6.0) / 2.0).astype(int).tolist()) == list(range(12))  # one per 2-wide stratum
+    g = grid_strata(gen, 12, 8.0, 40.0, 1.0)
+    assert len(set(g)) == 12 and g == sorted(g) and all(float(x).is_integer() and 8 <= x <= 40 for x in g)
+    assert grid_strata(gen, 0, 0.0, 1.0, 1.0) == []
