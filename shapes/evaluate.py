@@ -59,14 +59,23 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
 
 
 @torch.no_grad()
-def _logits(model, points: torch.Tensor, batch_size: int) -> torch.Tensor:
-    return torch.cat([model(points[i:i + batch_size]) for i in range(0, len(points), batch_size)])
+def _logits(model, points: torch.Tensor, batch_size: int, normals: torch.Tensor | None = None) -> torch.Tensor:
+    out = []
+    for i in range(0, len(points), batch_size):
+        n = None if normals is None else normals[i:i + batch_size]
+        out.append(model(points[i:i + batch_size], None, n))
+    return torch.cat(out)
 
 
 @torch.no_grad()
-def logits_under_poses(model, points: torch.Tensor, rotations: torch.Tensor, batch_size: int = 32) -> torch.Tensor:
-    """Logits of ``points (M, N, 3)`` each turned by its own ``rotations (M, 3, 3)`` → (M, classes)."""
-    return _logits(model, points @ rotations.transpose(-1, -2), batch_size)
+def logits_under_poses(model, points: torch.Tensor, rotations: torch.Tensor, batch_size: int = 32,
+                       normals: torch.Tensor | None = None) -> torch.Tensor:
+    """Logits of ``points (M, N, 3)`` each turned by its own ``rotations (M, 3, 3)`` → (M, classes).
+
+    ``normals (M, N, 3)``, when given, turn with their points (proper or improper ``rotations``).
+    """
+    r = rotations.transpose(-1, -2)
+    return _logits(model, points @ r, batch_size, None if normals is None else normals @ r)
 
 
 def score(pred: np.ndarray, target: np.ndarray, classes: list[str], handed: dict[str, bool]) -> dict:
@@ -89,23 +98,24 @@ def score(pred: np.ndarray, target: np.ndarray, classes: list[str], handed: dict
 
 
 @torch.no_grad()
-def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 0) -> dict:
+def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 0,
+                      normals: torch.Tensor | None = None) -> dict:
     """Largest change of the logits under random rotations and under reflections, relative to
     the largest logit magnitude. An invariant model shows float round-off (~1e-6 in float32);
     a model that sees handedness must change under reflections."""
     gen = torch_generator(seed)
-    base = _logits(model, points, 64)
+    base = _logits(model, points, 64, normals)
     scale = float(base.abs().max().clamp_min(1e-12))
     out = {}
     for name, sampler in (("rotation", random_rotations), ("reflection", random_improper)):
         worst = 0.0
         for _ in range(trials):
             rot = sampler(len(points), generator=gen, dtype=points.dtype)
-            worst = max(worst, float((logits_under_poses(model, points, rot, 64) - base).abs().max()) / scale)
+            worst = max(worst, float((logits_under_poses(model, points, rot, 64, normals) - base).abs().max()) / scale)
         out[name] = worst
     # translation: every backbone is built translation invariant; measure it too
     shift = torch.randn(len(points), 1, 3, generator=gen, dtype=points.dtype) * 5.0
-    out["translation"] = float((_logits(model, points + shift, 64) - base).abs().max()) / scale
+    out["translation"] = float((_logits(model, points + shift, 64, normals) - base).abs().max()) / scale
     return out
 
 
@@ -133,6 +143,7 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
                         f"{len(test.meta['classes'])} vs {len(classes)} classes.")
     twin_index = np.array([classes.index(meta["twins"][c]) for c in classes])
     x = torch.as_tensor(test.points, dtype=torch.float32)
+    nrm = torch.as_tensor(test.normals, dtype=torch.float32)
     y = np.asarray(test.labels)
     gen = torch_generator(seed)
     results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": meta["backbone"],
@@ -141,35 +152,41 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
         preds, targets = [], []
         for _ in range(repeats):
             rot = random_poses(regime, len(x), generator=gen)
-            preds.append(logits_under_poses(model, x, rot, batch_size).argmax(-1).numpy())
+            preds.append(logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy())
             targets.append(twin_index[y] if regime == "mirror" else y)
         results["regimes"][regime] = score(np.concatenate(preds), np.concatenate(targets), classes, meta["handed"])
-    results["invariance"] = invariance_errors(model, x[: min(len(x), 32)], seed=seed)
+    few = min(len(x), 32)
+    results["invariance"] = invariance_errors(model, x[:few], seed=seed, normals=nrm[:few])
     if sweeps:
-        results["angle_sweep"] = _angle_sweep(model, x, y, gen, batch_size)
-        results["noise_sweep"] = _noise_sweep(model, x, y, gen, batch_size)
+        results["angle_sweep"] = _angle_sweep(model, x, nrm, y, gen, batch_size)
+        results["noise_sweep"] = _noise_sweep(model, x, nrm, y, gen, batch_size)
     if write:
         write_json(ckpt.parent / "metrics.json", results)
     return results
 
 
-def _angle_sweep(model, x, y, gen, batch_size) -> dict:
+def _angle_sweep(model, x, nrm, y, gen, batch_size) -> dict:
     """Accuracy when each cloud is turned by a fixed angle about a random axis."""
     out = {}
     for deg in ANGLES_DEG:
         axis = torch.randn(len(x), 3, generator=gen)
         rot = axis_angle_to_matrix(axis, torch.full((len(x),), math.radians(deg)))
-        pred = logits_under_poses(model, x, rot, batch_size).argmax(-1).numpy()
+        pred = logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy()
         out[str(deg)] = float((pred == y).mean())
     return out
 
 
-def _noise_sweep(model, x, y, gen, batch_size) -> dict:
-    """Accuracy under uniform random poses with Gaussian sensor noise of a given size."""
+def _noise_sweep(model, x, nrm, y, gen, batch_size) -> dict:
+    """Accuracy under uniform random poses with Gaussian sensor noise of a given size.
+
+    Points move by ``sigma`` RMS radii per axis; normals get the same ``sigma`` per component and are
+    renormalised (about ``sigma`` radians of tilt), as normals estimated from a noisy scan would.
+    """
     out = {}
     for sigma in NOISE_LEVELS:
         rot = random_rotations(len(x), generator=gen)
         noisy = x + sigma * torch.randn(x.shape, generator=gen)
-        pred = logits_under_poses(model, noisy, rot, batch_size).argmax(-1).numpy()
+        tilted = torch.nn.functional.normalize(nrm + sigma * torch.randn(nrm.shape, generator=gen), dim=-1)
+        pred = logits_under_poses(model, noisy, rot, batch_size, tilted).argmax(-1).numpy()
         out[str(sigma)] = float((pred == y).mean())
     return out

@@ -85,16 +85,17 @@ def reflect_to_twins(points: torch.Tensor, labels: torch.Tensor, twin_of: torch.
 
 
 @torch.no_grad()
-def _validate(model: nn.Module, points: torch.Tensor, labels: torch.Tensor, poses: str, seed: int,
-              batch_size: int) -> tuple[float, float]:
+def _validate(model: nn.Module, points: torch.Tensor, normals: torch.Tensor, labels: torch.Tensor, poses: str,
+              seed: int, batch_size: int) -> tuple[float, float]:
     """Accuracy and mean cross-entropy on the validation clouds, each turned by a seeded pose."""
     model.eval()
     gen = torch_generator(seed)
     rot = random_poses(poses, len(points), generator=gen, dtype=points.dtype, device=points.device)
     correct, loss = 0, 0.0
     for start in range(0, len(points), batch_size):
-        x = points[start:start + batch_size] @ rot[start:start + batch_size].transpose(-1, -2)
-        logits, y = model(x), labels[start:start + batch_size]
+        r = rot[start:start + batch_size].transpose(-1, -2)
+        x, n = points[start:start + batch_size] @ r, normals[start:start + batch_size] @ r
+        logits, y = model(x, None, n), labels[start:start + batch_size]
         correct += int((logits.argmax(-1) == y).sum())
         loss += float(nn.functional.cross_entropy(logits, y, reduction="sum"))
     n = max(len(points), 1)
@@ -134,6 +135,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     y_train = torch.as_tensor(train.labels, dtype=torch.long, device=device)
     x_val = torch.as_tensor(val.points, dtype=torch.float32, device=device)
     y_val = torch.as_tensor(val.labels, dtype=torch.long, device=device)
+    n_train = torch.as_tensor(train.normals, dtype=torch.float32, device=device)  # (M, N, 3), turn with the points
+    n_val = torch.as_tensor(val.normals, dtype=torch.float32, device=device)
     classes = list(meta["classes"])
     twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes], device=device)  # (C,)
 
@@ -184,12 +187,14 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             idx = order[start:start + s.batch_size]
             rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
             x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
+            n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
             if s.mirror > 0:
                 chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
+                n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
                 x, y = reflect_to_twins(x, y, twin_of, chosen)
             if s.jitter > 0:
                 x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
-            loss = loss_fn(net(x), y)
+            loss = loss_fn(net(x, None, n), y)
             opt.zero_grad(set_to_none=True)
             loss.backward()
             nn.utils.clip_grad_norm_(model.parameters(), 5.0)
@@ -198,7 +203,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             losses.append(float(loss.detach()))
         if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
             break
-        val_acc, val_loss = _validate(model, x_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
+        val_acc, val_loss = _validate(model, x_val, n_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
         row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
                "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
         history.append(row)

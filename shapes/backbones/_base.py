@@ -4,7 +4,10 @@ A backbone maps a padded batch of clouds to invariant features::
 
     forward(points (B, N, 3) float, mask (B, N) bool | None) -> (B, out_features)
 
-``mask`` is True for real points and False for padding. A backbone declares ``symmetry``:
+``mask`` is True for real points and False for padding. A backbone built with ``uses_normals``
+True also takes ``normals=`` (B, N, 3): unit outward surface normals, which turn with the points
+(``n -> Q n`` for any orthogonal Q, reflections included) and carry what a sparse cloud cannot
+show, such as the tilt of a thread flank or of a helical tooth. A backbone declares ``symmetry``:
 ``"E3"`` (invariant to rotations, reflections, translations), ``"SE3"`` (rotations and
 translations only: it can tell a part from its mirror image) or ``"none"``. Backbones never read
 files and never import Hydra.
@@ -20,7 +23,7 @@ from torch import nn
 
 from shapes.errors import ConfigError, InputError
 
-__all__ = ["Backbone", "Classifier", "check_points", "masked_mean", "masked_max"]
+__all__ = ["Backbone", "Classifier", "check_points", "check_normals", "masked_mean", "masked_max"]
 
 SYMMETRIES = ("E3", "SE3", "none")
 
@@ -37,6 +40,17 @@ def check_points(points: torch.Tensor, mask: torch.Tensor | None) -> torch.Tenso
             f"mask should have shape (B, N) = {tuple(points.shape[:2])}, got {tuple(mask.shape)} instead."
         )
     return mask.to(torch.bool)
+
+
+def check_normals(normals: torch.Tensor | None, points: torch.Tensor) -> torch.Tensor:
+    """Validate normals for a backbone that needs them; same shape and dtype as ``points``."""
+    if normals is None:
+        raise InputError("this backbone was built with normals: true and needs normals (B, N, 3) "
+                         "beside the points; got none (retrain with normals: false for bare points).")
+    if not isinstance(normals, torch.Tensor) or normals.shape != points.shape:
+        shape = tuple(normals.shape) if isinstance(normals, torch.Tensor) else type(normals).__name__
+        raise InputError(f"normals should have the points' shape {tuple(points.shape)}, got {shape} instead.")
+    return normals.to(points.dtype)
 
 
 def masked_mean(x: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
@@ -73,6 +87,7 @@ class Backbone(nn.Module):
         self.config = self.Config(**kwargs)
         self.symmetry = "none"
         self.out_features = 0
+        self.uses_normals = False  # True: forward takes normals= as well
 
     def config_dict(self) -> dict:
         """Plain-python options that rebuild this backbone: ``type(self)(**config_dict())``."""
@@ -86,7 +101,8 @@ class Classifier(nn.Module):
     """Backbone + the shared head: an MLP on invariant features, so the logits are invariant too.
 
     Shape:
-        points (B, N, 3), mask (B, N) -> logits (B, num_classes)
+        points (B, N, 3), mask (B, N), normals (B, N, 3) -> logits (B, num_classes); normals are
+        passed on only to a backbone that uses them (others ignore them).
     """
 
     def __init__(self, backbone: Backbone, num_classes: int, hidden: int = 128, dropout: float = 0.1):
@@ -106,5 +122,12 @@ class Classifier(nn.Module):
     def symmetry(self) -> str:
         return self.backbone.symmetry
 
-    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+    @property
+    def uses_normals(self) -> bool:
+        return self.backbone.uses_normals
+
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None,
+                normals: torch.Tensor | None = None) -> torch.Tensor:
+        if self.backbone.uses_normals:
+            return self.head(self.backbone(points, mask, normals=normals))
         return self.head(self.backbone(points, mask))
