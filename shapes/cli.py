@@ -139,7 +139,7 @@ def _latest_run(run: str) -> str:
 def _run_parts(cfg) -> None:
     from shapes.parts import summarize_catalog, write_demo_catalog
 
-    out = write_demo_catalog(cfg.parts.out, seed=cfg.seed)
+    out = write_demo_catalog(cfg.parts.out, seed=cfg.seed, per_class=cfg.parts.per_class)
     rows = summarize_catalog(out)
     width = max(len(r["name"]) for r in rows)
     print(f"{'class':<{width}}  {'mirror twin':<{width}}  inst  faces       standard")
