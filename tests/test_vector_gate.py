@@ -307,3 +307,88 @@ def test_too_few_points_for_k_raises_input_error():
         model(torch.randn(2, 40, 3), mask)
     with pytest.raises(InputError):
         model(torch.randn(1, 40, 2))
+
+
+# ---------------------------------------------------------------------------------------------
+# surface normals
+
+
+def helicoid(n=96, handed=+1, dtype=torch.float64, seed=7):
+    """Points on a helicoid strip (thread flank) z = handed * p * theta / 2 pi + f(r), with normals.
+
+    # closed form: the normal of the level set F = z - handed * p * theta / (2 pi) is grad F
+    # = e_z - handed * p / (2 pi r) e_theta, taken as handed * grad F so that handed=-1 is exactly
+    # the mirror image z -> -z of handed=+1, normals included (FACTS.md, helix handedness, common practice).
+    """
+    rng = np.random.default_rng(seed)
+    t = rng.uniform(0.0, 4.0 * np.pi, n)
+    r = rng.uniform(1.0, 1.4, n)
+    pitch = 0.8
+    pts = np.stack([r * np.cos(t), r * np.sin(t), handed * pitch * t / (2.0 * np.pi)], -1)
+    e_theta = np.stack([-np.sin(t), np.cos(t), np.zeros_like(t)], -1)
+    grad = handed * np.array([0.0, 0.0, 1.0]) - (pitch / (2.0 * np.pi * r))[:, None] * e_theta
+    normals = grad / np.linalg.norm(grad, axis=1, keepdims=True)
+    return torch.tensor(pts[None], dtype=dtype), torch.tensor(normals[None], dtype=dtype)
+
+
+def unit_normals(x, seed=9):
+    gen = torch.Generator().manual_seed(seed)
+    return torch.nn.functional.normalize(torch.randn(x.shape, generator=gen, dtype=x.dtype), dim=-1)
+
+
+@pytest.mark.parametrize("dtype", [torch.float64, torch.float32])
+@pytest.mark.parametrize("handedness", [True, False])
+def test_with_normals_invariant_under_50_rotations_and_translations(dtype, handedness):
+    # closed form: an outward normal is a polar vector, n -> R n with its surface; R from scipy
+    model = make(dtype, handedness=handedness, normals=True)
+    x = cloud(dtype=dtype)
+    n = unit_normals(x)
+    R = rotations(50, dtype, seed=11)
+    t = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(12), dtype=dtype) * 5.0
+    with torch.no_grad():
+        ref = model(x, normals=n)
+        moved = model(transform(x.expand(50, -1, -1), R, t), normals=transform(n.expand(50, -1, -1), R))
+        # the other direction: normals left unturned make another input, and other features
+        stale = model(transform(x.expand(50, -1, -1), R), normals=n.expand(50, -1, -1))
+    assert rel_change(ref.expand(50, -1), moved) <= TOL[dtype]
+    assert rel_change(ref.expand(50, -1), stale) > 1e-2
+
+
+def test_with_normals_channels_transform_at_every_layer():
+    # closed form: v -> Q v, a -> det(Q) Q a, p -> det(Q) p for Q = a reflection (det -1, Householder)
+    model = make(normals=True)
+    x = cloud()
+    n = unit_normals(x)
+    Q = householder([0.2, 0.9, -0.4], torch.float64)
+    with torch.no_grad():
+        ref = model.forward_features(x, normals=n)
+        moved = model.forward_features(transform(x, Q), normals=transform(n, Q))
+    for before, after in zip(ref, moved):
+        assert rel_change(transform(before.v, Q), after.v) <= 1e-9
+        assert rel_change(-transform(before.a, Q), after.a) <= 1e-9
+        assert rel_change(-before.p, after.p) <= 1e-9
+        assert rel_change(before.s, after.s) <= 1e-9
+
+
+def test_helicoid_hands_differ_with_normals_and_agree_without_handedness():
+    # reference: FACTS.md, an E(3)-invariant model cannot separate a chiral object from its mirror image
+    right, n_right = helicoid(handed=+1)
+    left, n_left = helicoid(handed=-1)  # exact mirror z -> -z, normals mirrored with their surface
+    mirror = torch.diag(torch.tensor([1.0, 1.0, -1.0], dtype=torch.float64))
+    torch.testing.assert_close(transform(right, mirror), left)
+    torch.testing.assert_close(transform(n_right, mirror), n_left)
+    handed, blind = make(normals=True), make(normals=True, handedness=False)
+    with torch.no_grad():
+        assert rel_change(handed(right, normals=n_right), handed(left, normals=n_left)) > 1e-2
+        assert rel_change(blind(right, normals=n_right), blind(left, normals=n_left)) <= 1e-9
+
+
+def test_normals_are_required_when_configured_and_shaped_like_the_points():
+    model = make(normals=True)
+    x = cloud()
+    with pytest.raises(InputError, match="normals"):
+        model(x)
+    with pytest.raises(InputError, match="normals should have"):
+        model(x, normals=unit_normals(x)[:, :10])
+    with pytest.raises(ConfigError, match="normals"):
+        VectorGateBackbone(normals="yes")

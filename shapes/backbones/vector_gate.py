@@ -32,7 +32,7 @@ import torch
 from torch import nn
 from torch.nn import functional as F
 
-from shapes.backbones._base import Backbone, check_points, masked_max, masked_mean
+from shapes.backbones._base import Backbone, check_normals, check_points, masked_max, masked_mean
 from shapes.errors import ConfigError, InputError
 from shapes.geometry import gather_neighbours, knn_graph, radius_graph, relative_vectors
 
@@ -57,6 +57,8 @@ class VectorGateConfig:
     num_radial: int = 8  # Gaussian radial basis functions: smooth resolution of the edge length
     cutoff: float | None = None  # None: lengths in units of the cloud's mean neighbour distance
     handedness: bool = True  # keep cross/triple products so mirror twins can be told apart
+    normals: bool = False  # also take unit outward surface normals (B, N, 3): they show the tilt of
+    # thread flanks and helical teeth that a few hundred points cannot (False: bare points suffice)
 
 
 class PointFeatures(NamedTuple):
@@ -285,19 +287,30 @@ class Embedding(nn.Module):
     terms ``det[c2, c3, M c3]`` and ``det[c2, c3, M^2 c3]``, the twist of ``c1`` and ``c3`` about the
     edges and the global chirality ``det[c2, M c2, M^2 c2]``.
     (A triple product of ``c1``, ``c2`` and a plain edge average would vanish: ``c1`` is that average.)
+
+    With normals ``n`` (a polar vector: ``n -> Q n``), also the vector ``n``, the scalars ``n . c1``
+    and ``n . c2`` (normalised), the pseudo-vectors ``n x M n`` and ``n x c2`` and the pseudo-scalars
+    ``det[c2, n, M n]``, ``det[c2, n, M^2 n]`` and the normals' twist about the edges
+    ``mean_j det[n_i, n_j, r_ij]``. On a helicoid (a thread flank, a helical tooth, a coil) the normal
+    leans along the axis in step with the turn, so ``det[y, n, M n]`` keeps one sign over the whole
+    surface, the sign of the hand times that of the part's axial stretch, which ``M`` gives as well;
+    on flats and plain cylinders it vanishes. The normals are taken as given: outward on a closed
+    mesh, towards the scanner on a range scan (the shards hold both kinds consistently).
     """
 
     def __init__(self, config: VectorGateConfig):
         super().__init__()
         S, V = config.scalars, config.vectors
-        self.handed = config.handedness
-        self.scalar = nn.Linear(10, S)
-        self.vector = ChannelMix(4, V)
+        self.handed, self.normals = config.handedness, config.normals
+        extra = 1 if config.normals else 0
+        self.scalar = nn.Linear(10 + 2 * extra, S)
+        self.vector = ChannelMix(4 + extra, V)
         if self.handed:
-            self.pseudo_vector = ChannelMix(4, V)
-            self.pseudo_scalar = nn.Linear(9, V, bias=False)  # no bias: a bias is parity even
+            self.pseudo_vector = ChannelMix(4 + 2 * extra, V)
+            self.pseudo_scalar = nn.Linear(9 + 3 * extra, V, bias=False)  # no bias: a bias is parity even
 
-    def forward(self, centred: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry) -> PointFeatures:
+    def forward(self, centred: torch.Tensor, mask: torch.Tensor, geom: EdgeGeometry,
+                normals: torch.Tensor | None = None) -> PointFeatures:
         rms = torch.sqrt(masked_mean((centred * centred).sum(-1, keepdim=True), mask) + _EPS)  # (B, 1)
         c2 = centred / rms.unsqueeze(1)  # (B, N, 3)
         rel, mean = geom.rel, geom.mean.unsqueeze(-1)  # (B, N, k, 3) in units of L, (B, N, k, 1)
@@ -312,17 +325,29 @@ class Embedding(nn.Module):
         dist = torch.sqrt((rel * rel).sum(-1, keepdim=True) + _EPS)  # (B, N, k, 1)
         mean_d = (dist * mean).sum(2)  # (B, N, 1)
         spread = torch.sqrt((((dist - mean_d.unsqueeze(2)) ** 2) * mean).sum(2) + _EPS)  # (B, N, 1)
-        s = self.scalar(torch.cat([n, cos, mean_d, spread], -1))  # (B, N, S)
+        scalars = [n, cos, mean_d, spread]
+        if self.normals:
+            u = normals  # (B, N, 3) unit outward normals
+            scalars.append(dot(u.unsqueeze(-2), c[..., :2, :]) / n[..., :2])  # (B, N, 2): n.c1, n.c2
+            c = torch.cat([c, u.unsqueeze(-2)], -2)  # (B, N, 5, 3)
+        s = self.scalar(torch.cat(scalars, -1))  # (B, N, S)
         v = self.vector(c)  # (B, N, V, 3)
         if not self.handed:
             return PointFeatures(s, v, None, None)
+        c = c[..., :4, :]  # the four geometric vectors; the normal's odd terms follow below
         axial = cross(c, c.roll(-1, -2))  # (B, N, 4, 3): c1 x c2, c2 x c3, c3 x c4, c4 x c1
-        a = self.pseudo_vector(axial)  # (B, N, V, 3)
         triple = dot(axial, c.roll(-2, -2)) / (n * n.roll(-1, -1) * n.roll(-2, -1))  # (B, N, 4)
         # det[y, C y, M C y]: along a helix C y follows the local tangent t and this is about
         # det[y, t, axis] (t . axis), whose sign is the hand of the helix (springs, helical teeth)
         helix = torch.stack([_det(c2, c3, c5), _det(c2, c3, c5 @ M)], -1)  # (B, N, 2)
         odd = [triple, helix, _twist(c1, c3, mask, geom), _global_chirality(c2, geom)]
+        if self.normals:
+            mu = u @ M  # (B, N, 3)
+            axial = torch.cat([axial, torch.stack([cross(u, mu), cross(u, c2)], -2)], -2)  # (B, N, 6, 3)
+            uj = gather_neighbours(u, geom.index)  # (B, N, k, 3)
+            twist_n = (dot(cross(u.unsqueeze(2), uj), geom.rel) * geom.mean).sum(2, keepdim=True)  # (B, N, 1)
+            odd += [dot(c2, cross(u, mu)).unsqueeze(-1), dot(c2, cross(u, mu @ M)).unsqueeze(-1), twist_n]
+        a = self.pseudo_vector(axial)  # (B, N, V, 3)
         p = self.pseudo_scalar(torch.cat(odd, -1))  # (B, N, V)
         return PointFeatures(s, v, p, a)
 
@@ -497,8 +522,9 @@ def _check_config(c: VectorGateConfig) -> None:
             isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or math.isinf(value)
         ):
             raise ConfigError(f"vector_gate option '{field}' should be a positive number or None, got {value!r}.")
-    if not isinstance(c.handedness, bool):
-        raise ConfigError(f"vector_gate option 'handedness' should be true or false, got {c.handedness!r}.")
+    for field in ("handedness", "normals"):
+        if not isinstance(getattr(c, field), bool):
+            raise ConfigError(f"vector_gate option '{field}' should be true or false, got {getattr(c, field)!r}.")
 
 
 def readout(x: PointFeatures) -> torch.Tensor:
@@ -518,7 +544,8 @@ class VectorGateBackbone(Backbone):
     ``2 (S + 3V)`` with handedness.
 
     Shape:
-        points (B, N, 3), mask (B, N) bool | None -> (B, out_features)
+        points (B, N, 3), mask (B, N) bool | None[, normals (B, N, 3) with ``normals=True``]
+        -> (B, out_features)
     """
 
     name = "vector_gate"
@@ -529,12 +556,14 @@ class VectorGateBackbone(Backbone):
         c = self.config
         _check_config(c)
         self.symmetry = "SE3" if c.handedness else "E3"
+        self.uses_normals = c.normals
         self.embed = Embedding(c)
         self.layers = nn.ModuleList(VectorGateLayer(c) for _ in range(c.layers))
         self.final_norm = FeatureNorm(c)
         self.out_features = 2 * (c.scalars + c.vectors + (2 * c.vectors if c.handedness else 0))
 
-    def _features(self, points: torch.Tensor, mask: torch.Tensor) -> list[PointFeatures]:
+    def _features(self, points: torch.Tensor, mask: torch.Tensor,
+                  normals: torch.Tensor | None = None) -> list[PointFeatures]:
         k = self.config.k
         if self.config.radius is None:
             fewest = int(mask.sum(1).min()) if mask.numel() else 0
@@ -543,22 +572,30 @@ class VectorGateBackbone(Backbone):
         points = torch.where(mask.unsqueeze(-1), points, torch.zeros_like(points))  # junk can't leak
         centred = points - masked_mean(points, mask).unsqueeze(1)  # (B, N, 3): translation invariant
         geom = edge_geometry(centred, mask, self.config)
-        x = self.embed(centred, mask, geom)
+        if normals is not None:
+            normals = torch.where(mask.unsqueeze(-1), normals, torch.zeros_like(normals))
+        x = self.embed(centred, mask, geom, normals)
         out = [x]
         for layer in self.layers:
             x = layer(x, geom)
             out.append(x)
         return out
 
-    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> list[PointFeatures]:
+    def _normals(self, normals: torch.Tensor | None, points: torch.Tensor) -> torch.Tensor | None:
+        return check_normals(normals, points) if self.uses_normals else None
+
+    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None,
+                         normals: torch.Tensor | None = None) -> list[PointFeatures]:
         """Per-point features after the embedding and after every layer (``layers + 1`` entries).
 
         Under ``points @ Q.T + t`` with Q orthogonal: ``s`` is unchanged, ``v -> v @ Q.T``,
         ``p -> det(Q) p``, ``a -> det(Q) a @ Q.T``. Values at padded points are meaningless.
         """
-        return self._features(points, check_points(points, mask))
+        return self._features(points, check_points(points, mask), self._normals(normals, points))
 
-    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None,
+                normals: torch.Tensor | None = None) -> torch.Tensor:
         mask = check_points(points, mask)
-        per_point = readout(self.final_norm(self._features(points, mask)[-1]))  # (B, N, F/2)
+        features = self._features(points, mask, self._normals(normals, points))
+        per_point = readout(self.final_norm(features[-1]))  # (B, N, F/2)
         return torch.cat([masked_mean(per_point, mask), masked_max(per_point, mask)], -1)
