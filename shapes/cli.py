@@ -20,7 +20,7 @@ VERBS: dict[str, str] = {
     "sample": "turn a catalog folder (meshes=...) into point-cloud shards (data=...)",
     "train": "train a classifier (backbone=<name>) on the shards; -m sweeps over values",
     "eval": "score a trained run (run=<folder>|latest) under random poses and mirror images",
-    "demo": "parts → sample → train two backbones → evaluate → one combined report",
+    "demo": "parts → sample → train each backbone briefly → evaluate → one combined report",
 }
 
 # the config sections each verb reads, shown by `shapes <verb> --help`
@@ -208,8 +208,13 @@ def _run_demo(cfg) -> None:
     factories = {name: (lambda name=name: _backbone_from_file(name, options.get(name))) for name in d.backbones}
     for name in d.backbones:
         factories[name]()  # fail fast on a bad backbone name, before any work
+    minutes = _plain(d.get("minutes")) or {}
+    unknown = sorted(set(minutes) - set(_groups()["backbone"]))
+    if unknown:
+        raise ConfigError(f"demo.minutes names unknown backbone(s) {unknown}; "
+                          f"choose from {', '.join(_groups()['backbone'])}.")
     report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
-                      seed=cfg.seed, threads=cfg.train.threads)
+                      seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror)
     print(f"demo report: {report}")
 
 

@@ -21,8 +21,14 @@ __all__ = ["run_demo"]
 
 def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[str, Callable[[], Backbone]], *,
              points: int = 512, copies: dict | None = None, epochs: int = 12, seed: int = 0,
-             threads: int | None = None, repeats: int = 3) -> Path:
-    """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path."""
+             threads: int | None = None, repeats: int = 3, minutes: dict[str, float] | None = None,
+             mirror: float = 0.0) -> Path:
+    """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path.
+
+    ``minutes`` gives a backbone a wall-time budget for training (its learning rate anneals within
+    it; ``epochs`` is then an upper bound); ``mirror`` is ``TrainSettings.mirror`` for every backbone.
+    """
+    minutes = minutes or {}
     started = time.perf_counter()
     meshes, out = Path(meshes), Path(out)
     if not (meshes / "catalog.json").is_file() and not any(meshes.glob("*/")):
@@ -37,22 +43,26 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
     runs = {}
     for name, make in backbones.items():
         t0 = time.perf_counter()
-        print(f"[demo] training '{name}' for {epochs} epochs on {meta['counts']['train']} clouds", flush=True)
+        budget = minutes.get(name)
+        limit = f"{budget:g} min (at most {epochs} epochs)" if budget else f"{epochs} epochs"
+        print(f"[demo] training '{name}' for {limit} on {meta['counts']['train']} clouds", flush=True)
         backbone = make()
-        settings = TrainSettings(epochs=epochs, seed=seed, threads=threads)
+        settings = TrainSettings(epochs=epochs, seed=seed, threads=threads, max_minutes=budget, mirror=mirror)
         train_classifier(backbone, data, out / name, settings)
         metrics = evaluate_run(out / name, data, repeats=repeats, seed=seed, threads=threads)
-        metrics["train_seconds"] = time.perf_counter() - t0
+        metrics["train_seconds"] = time.perf_counter() - t0  # training and evaluation
         run_report(metrics, out / name)
         runs[name] = metrics
         print(f"[demo] {name}: " + ", ".join(f"{r} {100 * m['accuracy']:.0f}%" for r, m in metrics["regimes"].items())
               + f" ({metrics['train_seconds']:.0f} s)", flush=True)
-    minutes = (time.perf_counter() - started) / 60
+    total = (time.perf_counter() - started) / 60
     handed = [c for c, h in meta["handed"].items() if h]
     preamble = (f"A maintenance store sorts a mixed bin of returned parts: {len(meta['classes'])} classes, "
                 f"{len(handed)} of them handed (mirror twins: "
                 + ", ".join(f"{c} ↔ {meta['twins'][c]}" for c in handed if c < meta["twins"][c])
-                + f"). Each backbone trained for {epochs} epochs on clouds of {points} points in the CAD frame "
-                f"(aligned poses) and was tested on held-out part instances. Whole demo: {minutes:.1f} min.")
+                + f"). Each backbone trained on clouds of {points} points in the CAD frame (aligned poses; "
+                + (f"{mirror:.0%} of them mirrored and labelled as their twin; " if mirror else "")
+                + ", ".join(f"{n} {minutes[n]:g} min" if n in minutes else f"{n} {epochs} epoch{'s' * (epochs != 1)}" for n in runs)
+                + f") and was tested on held-out part instances. Whole demo: {total:.1f} min.")
     return comparison_report(runs, out, title="shapes demo: part classification under random poses and mirror images",
                              preamble=preamble)

@@ -115,10 +115,19 @@ def test_multirun_sweeps_backbones(tiny_data, tmp_path, monkeypatch):
     assert found == ["0-distance", "1-plain"]
 
 
+def test_demo_budget_for_an_unknown_backbone_is_refused(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo", f"demo.out={tmp_path / 'demo'}", "demo.backbones=[plain]", "demo.minutes={plane: 1}"]) == 2
+    assert "demo.minutes" in one_error_line(capsys)
+    assert not (tmp_path / "demo").exists()
+
+
 def test_demo_on_a_tiny_setting(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     assert main(["demo", f"meshes={DEMO}", f"demo.out={tmp_path / 'demo'}", "demo.points=96", "demo.epochs=1",
-                 "demo.copies={train: 1, val: 1, test: 1}"]) == 0
+                 "demo.copies={train: 1, val: 1, test: 1}", "~demo.minutes", "+demo.minutes={plain: 0.1}"]) == 0
     report = (tmp_path / "demo" / "report.md").read_text()
     assert "| distance | E3 |" in report and "| plain | none |" in report
+    assert "| vector_gate | SE3 |" in report and "| harmonic_attention | SE3 |" in report
+    assert "plain 0.1 min" in report and "distance 1 epoch)" not in report and "distance 1 epoch," in report
     assert "demo report:" in capsys.readouterr().out
