@@ -223,7 +223,7 @@ def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
     conf = OmegaConf.load("conf/backbone/harmonic_attention.yaml")
     built = instantiate(conf)
     assert isinstance(built, HarmonicAttentionBackbone)
-    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff"):
+    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff", "normals"):
         assert getattr(built.config, key) == conf[key]
     assert built.config.channels == {int(k): v for k, v in conf.channels.items()}
 
@@ -260,3 +260,199 @@ def test_too_small_cloud_for_k_raises_input_error():
     mask[0, 12:] = False
     with pytest.raises(InputError, match="got 12"):
         net(random_cloud(b=2, n=20), mask)
+
+
+# -- surface normals --------------------------------------------------------------------------
+
+NORMALS = {"k": 8, "normals": True}
+
+
+def random_normals(b=1, n=64, seed=17, dtype=torch.float64):
+    v = torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
+    return v / v.norm(dim=-1, keepdim=True)
+
+
+def threaded_cloud(n=96, depth=0.5, pitch=1.0, dtype=torch.float64):
+    """Points on the cylinder r = 1, |z| <= 2, with the outward normals of a right-hand thread
+    ``r = 1 + e sin(2 pi z / p - theta)`` whose flanks are finer than the point spacing.
+
+    The point set is mirror-symmetric (every point has its image under x -> -x), so only the
+    normals carry the hand. Normal of ``r(theta, z)``: ``e_r - (1/r) dr/dtheta e_theta - dr/dz e_z``
+    (closed form for a surface of revolution perturbed in r), evaluated with ``depth = e (2 pi / p)``.
+    """
+    g = torch.Generator().manual_seed(21)
+    theta = 2 * math.pi * torch.rand(n // 2, generator=g, dtype=dtype)
+    z = 4 * torch.rand(n // 2, generator=g, dtype=dtype) - 2
+    theta = torch.cat([theta, math.pi - theta])  # (x, y) -> (-x, y): theta -> pi - theta
+    z = torch.cat([z, z])
+    points = torch.stack([torch.cos(theta), torch.sin(theta), z], -1)
+    phase = torch.cos(2 * math.pi * z / pitch - theta)
+    e_r = torch.stack([torch.cos(theta), torch.sin(theta), 0 * z], -1)
+    e_t = torch.stack([-torch.sin(theta), torch.cos(theta), 0 * z], -1)
+    e_z = torch.stack([0 * z, 0 * z, 1 + 0 * z], -1)
+    e = depth * pitch / (2 * math.pi)
+    normal = e_r + e * phase[:, None] * e_t - depth * phase[:, None] * e_z
+    return points[None], (normal / normal.norm(dim=-1, keepdim=True))[None]
+
+
+def turn(points, normals, Q):
+    # closed form: an outward normal is a polar vector, n -> Q n (reflections included)
+    return rotate(points, Q), rotate(normals, Q)
+
+
+@pytest.mark.parametrize("parity", ["full", "even"])
+def test_normals_features_invariant_under_50_rotations_and_translations(parity):
+    # reference: DESIGN.md equivariance claim; closed form: normals turn as n -> R n and ignore translations
+    net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    cloud, normals = random_cloud(), random_normals()
+    R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=torch.float64) * 5
+    moved, turned = turn(cloud.expand(50, -1, -1), normals.expand(50, -1, -1), R)
+    base = net(cloud, normals=normals)
+    assert rel(base.expand(50, -1), net(moved + shift, normals=turned)) <= 1e-9
+    # both directions: the features depend on the normals, not only on the points
+    assert rel(base, net(cloud, normals=random_normals(seed=18))) > 1e-2
+
+
+@pytest.mark.parametrize("improper", [False, True], ids=["rotation", "improper"])
+@pytest.mark.parametrize("parity", ["full", "even"])
+def test_normals_every_layer_transforms_with_wigner_d_and_parity(parity, improper):
+    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule of DESIGN.md;
+    # closed form: an outward normal is a polar vector, n -> Q n
+    net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    cloud, normals = random_cloud(n=40), random_normals(n=40)
+    gen = torch.Generator().manual_seed(4)
+    Q = (random_improper if improper else random_rotations)(3, generator=gen, dtype=torch.float64)
+    before = net.forward_features(cloud.expand(3, -1, -1), normals=normals.expand(3, -1, -1))
+    moved, turned = turn(cloud.expand(3, -1, -1), normals.expand(3, -1, -1), Q)
+    after = net.forward_features(moved, normals=turned)
+    for layer_before, layer_after in zip(before, after):
+        expected = transform_features(layer_before, Q)
+        for t in layer_before:
+            assert rel(expected[t], layer_after[t]) <= 1e-9, t
+    # the normals enter as degree-1 inputs: the first layer's degree-1 features do turn
+    assert rel(before[0][(1, -1)], after[0][(1, -1)]) > 1e-2
+
+
+def test_turning_the_points_but_not_the_normals_changes_the_output():
+    # closed form: a consistent pose turns both (n -> R n); turning only the points breaks the surface
+    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    cloud, normals = random_cloud(), random_normals()
+    R = random_rotations(4, generator=torch.Generator().manual_seed(6), dtype=torch.float64)
+    base = net(cloud, normals=normals).expand(4, -1)
+    moved, turned = turn(cloud.expand(4, -1, -1), normals.expand(4, -1, -1), R)
+    assert rel(base, net(moved, normals=turned)) <= 1e-9
+    assert rel(base, net(moved, normals=normals.expand(4, -1, -1))) > 1e-2
+
+
+def test_normal_inputs_match_numpy_and_transform_by_type():
+    # reference: numpy.linalg.det of [y, n, M n] and numpy.linalg.eigvalsh for sum (eig M - 1)^3;
+    # closed form: n -> Q n, so scalars stay, vectors turn, pseudo-scalars take det Q
+    import numpy as np
+
+    from shapes.backbones.harmonic_attention import normal_inputs
+
+    net = make(**NORMALS)
+    cloud, normals = threaded_cloud()
+    centred = cloud - cloud.mean(1, keepdim=True)
+    mask = torch.ones(cloud.shape[:2], dtype=torch.bool)
+    out = normal_inputs(centred, normals, mask, net.edge_frame(centred, mask))
+    y = centred[0].numpy() / np.sqrt(np.mean(np.sum(centred[0].numpy() ** 2, 1)))
+    moment = 3 * (y.T @ y / len(y)) / np.mean(np.sum(y**2, 1))
+    n = normals[0].numpy()
+    chi = np.array([np.linalg.det(np.stack([y[i], n[i], moment @ n[i]])) for i in range(len(y))])
+    aniso = np.sum((np.linalg.eigvalsh(moment) - 1) ** 3)
+    np.testing.assert_allclose(out.pseudo[0, :, 0].numpy(), chi, atol=1e-12)
+    np.testing.assert_allclose(out.scalars[0, :, 4].numpy(), aniso, rtol=1e-12)
+    np.testing.assert_allclose(out.pseudo[0, :, 2].numpy(), chi.mean() * aniso, rtol=1e-10)
+    # a long cylinder is a rod (a > 0); closed form: on the thread chi = (m_z - m_r) t_theta t_z y.e_r, with
+    # t_theta t_z = -e depth cos^2: mean(chi) = -(m_z - m_r) e depth / 2 / rms, clearly non-zero and negative
+    assert aniso > 0.1 and chi.mean() < -5e-3
+    Q = random_improper(1, generator=torch.Generator().manual_seed(8), dtype=torch.float64)
+    moved, turned = turn(centred, normals, Q)
+    mirrored = normal_inputs(moved, turned, mask, net.edge_frame(moved, mask))
+    torch.testing.assert_close(mirrored.scalars, out.scalars, rtol=1e-10, atol=1e-12)
+    torch.testing.assert_close(mirrored.vectors, out.vectors @ Q.transpose(-1, -2)[:, None], rtol=1e-10, atol=1e-12)
+    torch.testing.assert_close(mirrored.pseudo, -out.pseudo, rtol=1e-10, atol=1e-12)
+
+
+def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
+    # reference: FACTS.md helix handedness (a thread is chiral, its mirror image the other hand);
+    # closed form: an outward normal is a polar vector, n -> Q n under the reflection too
+    cloud, normals = threaded_cloud()
+    S = reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64))
+    Q = random_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64) @ S
+    mirror = turn(cloud, normals, Q)
+    full = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    even = make(parity="even", channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    assert rel(full(cloud, normals=normals), full(mirror[0], normals=mirror[1])) > 1e-2
+    assert rel(even(cloud, normals=normals), even(mirror[0], normals=mirror[1])) <= 1e-9
+    # the point set alone is mirror-symmetric: without normals even parity "full" cannot tell the hands
+    bare = make(channels={0: 8, 1: 4, 2: 2}, k=8)
+    assert rel(bare(cloud), bare(mirror[0])) <= 1e-9
+
+
+def test_fast_path_equals_dense_reference_with_normals_and_gradients():
+    # reference: the dense per-edge kernel implementation in the same module (explicit W(r_ij))
+    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    points = random_cloud(b=2, n=24, seed=3).requires_grad_(True)
+    normals = random_normals(b=2, n=24, seed=4).requires_grad_(True)
+    mask = torch.ones(2, 24, dtype=torch.bool)
+    mask[1, -4:] = False
+    weights = torch.randn(net.out_features, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
+    results = []
+    for reference in (False, True):
+        net.zero_grad()
+        points.grad = normals.grad = None
+        out = net(points, mask, normals=normals, reference=reference)
+        (out * weights).sum().backward()
+        results.append((out.detach(), [p.grad.clone() for p in net.parameters()] + [points.grad.clone(), normals.grad.clone()]))
+    (fast, fast_grads), (ref, ref_grads) = results
+    assert (fast - ref).abs().max() <= 1e-10 * ref.abs().max()
+    for a, b in zip(fast_grads, ref_grads):
+        assert (a - b).abs().max() <= 1e-10 * max(float(b.abs().max()), 1.0)
+    assert float(ref_grads[-1].abs().max()) > 0  # the output really depends on the normals
+
+
+def test_padding_with_junk_normals_changes_nothing_and_every_parameter_learns():
+    # reference: DESIGN.md mask convention (True = real point); common practice: no dead parameters
+    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    cloud, normals = random_cloud(b=2, n=40), random_normals(b=2, n=40)
+    padded = torch.cat([cloud, torch.full((2, 6, 3), 1e3, dtype=torch.float64)], 1)
+    junk = torch.cat([normals, torch.full((2, 6, 3), -7.0, dtype=torch.float64)], 1)
+    mask = torch.cat([torch.ones(2, 40, dtype=torch.bool), torch.zeros(2, 6, dtype=torch.bool)], 1)
+    assert rel(net(cloud, normals=normals), net(padded, mask, normals=junk)) <= 1e-12
+    net.train()
+    net(cloud, normals=normals).square().sum().backward()
+    assert [n for n, p in net.named_parameters() if p.grad is None or float(p.grad.abs().max()) == 0.0] == []
+
+
+def test_missing_or_misshapen_normals_raise_and_normals_false_ignores_them():
+    from shapes.backbones import Classifier
+
+    net = make(**NORMALS)
+    assert net.uses_normals and Classifier(net, 3).uses_normals
+    cloud = random_cloud(n=20)
+    with pytest.raises(InputError, match=r"needs normals \(B, N, 3\)") as missing:
+        net(cloud)
+    assert "\n" not in str(missing.value)
+    with pytest.raises(InputError, match=r"normals should have the points' shape \(1, 20, 3\), got \(1, 19, 3\)"):
+        net(cloud, normals=random_normals(n=19))
+    with pytest.raises(InputError, match="needs normals"):
+        net.forward_features(cloud)
+    plain = make()
+    assert not plain.uses_normals and not Classifier(plain, 3).uses_normals
+    assert torch.equal(plain(cloud), plain(cloud, normals=random_normals(n=20)))
+    assert torch.equal(plain(cloud), plain(cloud, normals=random_normals(n=5)))  # not even checked
+
+
+@pytest.mark.parametrize(
+    "options,match",
+    [
+        ({"normals": "yes"}, r"normals should be true or false, got 'yes'"),
+        ({"normals": True, "channels": {0: 8, 2: 4}}, r"needs channels for degree 1"),
+    ],
+)
+def test_bad_normals_options_raise_config_errors(options, match):
+    with pytest.raises(ConfigError, match=match):
+        HarmonicAttentionBackbone(**options)

@@ -6,8 +6,15 @@ Every point carries features of types ``(l, p)`` (degree ``l <= l_max``, parity 
 tensor ``(B, N, C_l, 2l + 1)`` with ``C_l = channels[l]`` (see ``_equivariant`` for the transformation
 rules). The input is one proper-scalar block embedded from invariant descriptors (distance to the
 centroid, mean neighbour distance, length of the mean neighbour offset); every other type is built
-by the filters. A filter path ``(l_in, p_in) -> (l_out, p_in (-1)^{l_f})`` goes through the harmonic
-``Y_{l_f}`` of the edge direction, so parity is tracked exactly:
+by the filters. With ``normals: true`` the outward surface normals (``n -> Q n`` for every orthogonal
+``Q``: a polar vector) add a polar-vector block ``(1, -1)`` (the normal, ``M n``, the offset from
+the centroid and the mean neighbour normal, mixed by per-point scalar weights), a few
+normal-made proper scalars, and, in parity ``"full"``, a pseudo-scalar block ``(0, -1)`` built
+from ``det[y, n, M n]`` (see :func:`normal_inputs`): sub-spacing detail such as a thread flank,
+and so the hand of a thread, reaches the network in the first layer.
+
+A filter path ``(l_in, p_in) -> (l_out, p_in (-1)^{l_f})`` goes through the harmonic ``Y_{l_f}``
+of the edge direction, so parity is tracked exactly:
 
 - ``parity: "full"`` keeps every path; pseudo-quantities (``1 x 1 -> 1`` gives a pseudovector, a
   later hop a pseudo-scalar) get their own channels. The readout keeps pseudo-scalars as they are,
@@ -70,7 +77,14 @@ from typing import NamedTuple
 import torch
 from torch import nn
 
-from shapes.backbones._base import Backbone, check_points, masked_centroid, masked_max, masked_mean
+from shapes.backbones._base import (
+    Backbone,
+    check_normals,
+    check_points,
+    masked_centroid,
+    masked_max,
+    masked_mean,
+)
 from shapes.backbones._equivariant import (
     PARITY_MODES,
     EquivariantLinear,
@@ -96,7 +110,14 @@ from shapes.geometry import (
     spherical_harmonics,
 )
 
-__all__ = ["HarmonicAttentionBackbone", "HarmonicAttentionConfig", "HarmonicAttentionLayer", "EdgeFrame"]
+__all__ = [
+    "HarmonicAttentionBackbone",
+    "HarmonicAttentionConfig",
+    "HarmonicAttentionLayer",
+    "EdgeFrame",
+    "NormalInputs",
+    "normal_inputs",
+]
 
 
 @dataclass
@@ -111,6 +132,7 @@ class HarmonicAttentionConfig:
     radial_hidden: int = 32  # width of the radial MLP that turns the Gaussians into per-path weights
     cutoff: float = 1.0  # in RMS radii of the normalised part (filters fade to 0 there); ~4x a 16-NN radius
     parity: str = "full"  # "full": tell mirror twins apart (SE3); "even": reflection-invariant (E3)
+    normals: bool = False  # True: also take outward surface normals (B, N, 3); False keeps bare point clouds working
 
     def __post_init__(self):
         self.l_max = _count(self.l_max, "l_max", 0)
@@ -133,6 +155,13 @@ class HarmonicAttentionConfig:
                 f"got l_max = {self.l_max}, layers = {self.layers}; use parity 'even' for a smaller network."
             )
         self.cutoff = _positive(self.cutoff, "cutoff")
+        if not isinstance(self.normals, bool):
+            raise ConfigError(f"normals should be true or false, got {self.normals!r}.")
+        if self.normals and 1 not in self.channels:
+            raise ConfigError(
+                f"normals: true feeds each normal in as a degree-1 feature and needs channels for degree 1, "
+                f"got channels {self.channels}."
+            )
         if self.radius is not None:
             self.radius = _positive(self.radius, "radius")
 
@@ -181,6 +210,87 @@ class EdgeFrame(NamedTuple):
     envelope: torch.Tensor
     harmonics: list
     basis: dict | None
+
+
+NORMAL_SCALARS, NORMAL_VECTORS, NORMAL_PSEUDO = 5, 4, 3  # widths of the three parts of NormalInputs
+
+
+class NormalInputs(NamedTuple):
+    """Per-point inputs made from the surface normals (see :func:`normal_inputs`).
+
+    Attributes
+    ----------
+    scalars : (B, N, NORMAL_SCALARS) float
+        Proper scalars, unchanged by rotations and reflections.
+    vectors : (B, N, NORMAL_VECTORS, 3) float
+        Polar vectors in ``x, y, z`` order, turning as ``v -> Q v`` for every orthogonal ``Q``.
+    pseudo : (B, N, NORMAL_PSEUDO) float
+        Pseudo-scalars: unchanged by rotations, negated by reflections.
+    """
+
+    scalars: torch.Tensor
+    vectors: torch.Tensor
+    pseudo: torch.Tensor
+
+
+def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tensor, edges: EdgeFrame) -> NormalInputs:
+    """Exactly equivariant per-point quantities of the points and their outward normals.
+
+    With ``y`` a point's offset from the centroid in RMS radii, ``n`` its unit normal and
+    ``M = 3 mean(y y^T) / mean|y|^2`` the cloud's normalised second moment (trace 3; ``M = I`` for
+    an isotropic cloud), and over the valid edges ``j`` of a point:
+
+    - scalars: ``n . y / |y|`` (outward facing), ``n^T M n`` (normal along the long axes),
+      ``mean_j n . n_j`` (1 on a flat, less on a bend), ``n . mean_j r_ij / mean_j |r_ij|``
+      (the sign tells a groove from a ridge) and the cloud's anisotropy
+      ``a = tr (M - I)^3 = sum (eig M - 1)^3`` (> 0 for a rod, < 0 for a disc; no eigendecomposition);
+    - vectors: ``n``, ``M n``, ``y`` and ``mean_j n_j``;
+    - pseudo-scalars: ``chi = det[y, n, M n]``, ``chi a``, and the cloud's ``mean(chi) a`` at every
+      point. A helical flank tilts ``n`` about the axis in a sense set by the hand, so ``mean(chi)``
+      takes the hand's sign; ``a`` makes the sign the same for a long stud and a flat gear.
+
+    Parameters
+    ----------
+    points : (B, N, 3) float
+        Centred on the real points; padding at 0.
+    normals : (B, N, 3) float
+        Unit outward normals; padding at 0.
+    mask : (B, N) bool
+    edges : EdgeFrame
+        Neighbourhoods of ``points``.
+
+    Returns
+    -------
+    NormalInputs
+    """
+    tiny = 1e-24  # far below any real squared length (coordinates are in RMS radii)
+    y = points / torch.sqrt(masked_mean(points.square().sum(-1), mask) + tiny)[:, None, None]  # (B, N, 3)
+    second = masked_mean(y[..., :, None] * y[..., None, :], mask)  # (B, 3, 3)
+    moment = 3 * second / (second.diagonal(dim1=-2, dim2=-1).sum(-1)[:, None, None] + tiny)
+    shifted = moment - torch.eye(3, dtype=y.dtype, device=y.device)
+    aniso = torch.einsum("bij,bjk,bki->b", shifted, shifted, shifted)  # (B,)
+    mn = normals @ moment  # (B, N, 3); M is symmetric, so this is M n per point
+    chi = (torch.linalg.cross(y, normals) * mn).sum(-1)  # (B, N): det[y, n, M n]
+    cloud = masked_mean(chi, mask) * aniso  # (B,)
+
+    valid = edges.valid.to(y.dtype)[..., None]  # (B, N, k, 1)
+    count = valid.sum(-2).clamp_min(1.0)  # (B, N, 1)
+    mean_nj = (gather_neighbours(normals, edges.index) * valid).sum(-2) / count  # (B, N, 3)
+    mean_r = (edges.vectors * valid).sum(-2) / count  # (B, N, 3)
+    mean_length = edges.length.sum(-1) / count[..., 0]  # invalid slots have length 0
+    scalars = torch.stack(
+        [
+            (normals * y).sum(-1) / safe_norm(y),
+            (normals * mn).sum(-1),
+            (normals * mean_nj).sum(-1),
+            (normals * mean_r).sum(-1) / (mean_length + 1e-6),
+            aniso[:, None].expand_as(chi),
+        ],
+        -1,
+    )  # (B, N, NORMAL_SCALARS)
+    vectors = torch.stack([normals, mn, y, mean_nj], -2)  # (B, N, NORMAL_VECTORS, 3)
+    pseudo = torch.stack([chi, chi * aniso[:, None], cloud[:, None].expand_as(chi)], -1)  # (B, N, NORMAL_PSEUDO)
+    return NormalInputs(scalars, vectors, pseudo)
 
 
 class _Group(NamedTuple):
@@ -402,7 +512,7 @@ class HarmonicAttentionBackbone(Backbone):
     """Equivariant attention with spherical-harmonic filters; invariant readout (see module docstring).
 
     Shape:
-        points (B, N, 3), mask (B, N) -> features (B, out_features)
+        points (B, N, 3), mask (B, N), normals (B, N, 3) (only with ``normals: true``) -> features (B, out_features)
     """
 
     name = "harmonic_attention"
@@ -415,11 +525,22 @@ class HarmonicAttentionBackbone(Backbone):
         self.pairs = {l: angular_pairs(l, self.degrees, c.parity) for l in self.degrees}
         self.l_f_max = max(l_f for pairs in self.pairs.values() for l_f, _ in pairs)
         c0 = c.channels[0]
-        # Invariant descriptors -> proper scalars: the only input; filters build everything else.
+        # Invariant descriptors -> proper scalars; without normals the only input, filters build the rest.
         self.centroid_rbf = GaussianBasis(c.num_radial, 3.0)  # normalised parts lie within ~3 RMS radii
-        self.embed = nn.Sequential(nn.Linear(c.num_radial + 4, c0), nn.SiLU(), nn.Linear(c0, c0))
+        width = c.num_radial + 4 + (NORMAL_SCALARS if c.normals else 0)
+        self.embed = nn.Sequential(nn.Linear(width, c0), nn.SiLU(), nn.Linear(c0, c0))
         self.rbf = GaussianBasis(c.num_radial, c.cutoff)
         types = {(0, 1): c0}
+        if c.normals:
+            # Each input channel is a sum of equivariant inputs weighted by proper scalars of the same
+            # point (a linear map of the embedded invariants), so it keeps its type exactly:
+            # scalar x polar vector = polar vector, scalar x pseudo-scalar = pseudo-scalar.
+            if c.parity == "full":
+                self.pseudo_mix = nn.Linear(c0, c0 * NORMAL_PSEUDO)
+                types[(0, -1)] = c0
+            self.vector_mix = nn.Linear(c0, c.channels[1] * NORMAL_VECTORS)
+            types[(1, -1)] = c.channels[1]
+        self.uses_normals = c.normals
         layers = []
         for _ in range(c.layers):
             layers.append(HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden))
@@ -457,19 +578,24 @@ class HarmonicAttentionBackbone(Backbone):
             }
         return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis)
 
-    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> list:
+    def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None,
+                         normals: torch.Tensor | None = None, reference: bool = False) -> list:
         """Per-layer feature dicts ``{(l, p): (B, N, C_l, 2l+1)}``, one per layer (equivariant)."""
-        h, _ = self._run(points, mask, reference)
+        h, _ = self._run(points, mask, normals, reference)
         return h
 
-    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None, reference: bool = False) -> torch.Tensor:
-        per_layer, mask = self._run(points, mask, reference)
+    def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None,
+                normals: torch.Tensor | None = None, reference: bool = False) -> torch.Tensor:
+        """Invariant features ``(B, out_features)``; ``normals (B, N, 3)`` are needed with ``normals: true``
+        and ignored otherwise."""
+        per_layer, mask = self._run(points, mask, normals, reference)
         inv = point_invariants(self.final_norm(per_layer[-1]), self.types_out)  # (B, N, F)
         return torch.cat([masked_mean(inv, mask), masked_max(inv, mask)], -1)  # (B, 2F)
 
-    def _run(self, points, mask, reference):
+    def _run(self, points, mask, normals, reference):
         mask = check_points(points, mask)
         c = self.config
+        normals = check_normals(normals, points) if c.normals else None
         if c.radius is None:
             smallest = int(mask.sum(1).min()) if mask.numel() else 0
             if smallest <= c.k:
@@ -478,12 +604,31 @@ class HarmonicAttentionBackbone(Backbone):
         points = points.masked_fill(~mask[..., None], 0.0)
         points = torch.where(mask[..., None], points - masked_centroid(points, mask), points)
         edges = self.edge_frame(points, mask, reference)
-        h = {(0, 1): self.embed(self._descriptors(points, edges)).unsqueeze(-1)}  # (B, N, C0, 1)
+        h = self._inputs(points, mask, normals, edges)
         per_layer = []
         for layer in self.layers:
             h = layer(h, edges, reference)
             per_layer.append(h)
         return per_layer, mask
+
+    def _inputs(self, points, mask, normals, edges) -> dict:
+        """First-layer features: embedded invariants, and with normals the normal-made channels."""
+        descriptors = self._descriptors(points, edges)  # (B, N, num_radial + 4)
+        if normals is None:
+            return {(0, 1): self.embed(descriptors).unsqueeze(-1)}  # (B, N, C0, 1)
+        # Unit length (a scale-free input) and 0 on padding; sqrt(eps) keeps a zero normal finite.
+        normals = normals.masked_fill(~mask[..., None], 0.0)
+        normals = normals / safe_norm(normals, eps=1e-24)[..., None]
+        extra = normal_inputs(points, normals, mask, edges)
+        scalars = self.embed(torch.cat([descriptors, extra.scalars], -1))  # (B, N, C0)
+        h = {(0, 1): scalars.unsqueeze(-1)}  # (B, N, C0, 1)
+        if (0, -1) in self.layers[0].types_in:
+            weights = self.pseudo_mix(scalars).unflatten(-1, (-1, NORMAL_PSEUDO))  # (B, N, C0, P)
+            h[(0, -1)] = (weights * extra.pseudo[:, :, None]).sum(-1, keepdim=True)  # (B, N, C0, 1)
+        weights = self.vector_mix(scalars).unflatten(-1, (-1, NORMAL_VECTORS))  # (B, N, C1, V)
+        # DESIGN.md: degree-1 components are stored in the order of Y_1, (y, z, x)
+        h[(1, -1)] = weights @ extra.vectors[..., [1, 2, 0]]  # (B, N, C1, 3)
+        return h
 
     def _descriptors(self, points: torch.Tensor, edges: EdgeFrame) -> torch.Tensor:
         """Invariant per-point inputs ``(B, N, num_radial + 4)``, all unchanged by rotations and reflections.
