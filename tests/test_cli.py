@@ -115,6 +115,17 @@ def test_multirun_sweeps_backbones(tiny_data, tmp_path, monkeypatch):
     assert found == ["0-distance", "1-plain"]
 
 
+def test_multirun_sweeps_an_option_of_the_vector_gate(tiny_data, tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    assert main(["train", "-m", f"data={tiny_data}", "backbone=vector_gate", "backbone.scalars=8,16",
+                 "backbone.vectors=4", "backbone.k=6", "train.epochs=1", "train.batch_size=64"]) == 0
+    found = sorted((tmp_path / "runs" / "sweep").glob("*/*/checkpoint.pt"))
+    widths = [torch.load(f, weights_only=True)["meta"]["backbone"]["options"]["scalars"] for f in found]
+    assert [f.parent.name for f in found] == ["0-vector_gate", "1-vector_gate"] and widths == [8, 16]
+    # the yaml's normals: true reached the backbone, so it trained on the shards' normals
+    assert torch.load(found[0], weights_only=True)["meta"]["backbone"]["options"]["normals"] is True
+
+
 def test_demo_budget_for_an_unknown_backbone_is_refused(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     assert main(["demo", f"demo.out={tmp_path / 'demo'}", "demo.backbones=[plain]", "demo.minutes={plane: 1}"]) == 2
