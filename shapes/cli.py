@@ -21,6 +21,7 @@ VERBS: dict[str, str] = {
     "train": "train a classifier (backbone=<name>) on the shards; -m sweeps over values",
     "eval": "score a trained run (run=<folder>|latest) under random poses and mirror images",
     "demo": "parts → sample → train each backbone briefly → evaluate → one combined report",
+    "predict": "name new scans (predict.input=<file|folder>) with a run: class, confidence, or not a known part",
 }
 
 # the config sections each verb reads, shown by `shapes <verb> --help`
@@ -30,6 +31,7 @@ SECTIONS: dict[str, tuple[str, ...]] = {
     "train": ("backbone", "data", "train", "seed"),
     "eval": ("run", "eval", "seed"),
     "demo": ("meshes", "demo", "seed"),
+    "predict": ("run", "predict", "seed"),
 }
 
 FLAGS = {"-m", "--multirun", "--traceback", "-h", "--help"}
@@ -216,6 +218,20 @@ def _run_demo(cfg) -> None:
     report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
                       seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror)
     print(f"demo report: {report}")
+
+
+def _run_predict(cfg) -> None:
+    from shapes.predict import format_table, predict_files
+
+    p = cfg.predict
+    if p.input is None:
+        raise ConfigError("predict.input is not set; name a scan or mesh file, or a folder of them "
+                          "(predict.input=<path>).")
+    result = predict_files(_latest_run(cfg.run), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
+                           calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
+                           out=p.out)
+    print(format_table(result))
+    print(f"wrote {p.out}")
 
 
 def _task(cfg) -> None:

@@ -1,0 +1,290 @@
+"""The predict job: pose-averaged class probabilities, the calibrated "not a known part" threshold,
+the mirror-twin caution, and one-line answers to bad input."""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+import trimesh
+from scipy.spatial.transform import Rotation
+
+from shapes.backbones import Classifier, build_backbone
+from shapes.cli import main
+from shapes.data import load_split, read_meta
+from shapes.evaluate import load_classifier
+from shapes.geometry import random_poses
+from shapes.predict import HAND_NOTE, UNKNOWN, format_table, predict_files, read_input
+from shapes.seeding import torch_generator
+from shapes.train import TrainSettings, save_checkpoint, train_classifier
+
+DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
+CATALOG = json.loads((DEMO / "catalog.json").read_text())
+CLASSES = [c["name"] for c in CATALOG["classes"]]
+TWIN = {c["name"]: c["twin"] for c in CATALOG["classes"]}
+
+
+@pytest.fixture(scope="module", autouse=True)
+def one_thread():
+    saved = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(saved)
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory):
+    """A 64-point dataset of the demo catalog, a briefly trained distance run (E3), and an untrained
+    vector-gate run (SE3, normals, k = 40) sharing its metadata."""
+    root = tmp_path_factory.mktemp("predict")
+    data = root / "data"
+    assert main(["sample", f"meshes={DEMO}", f"data={data}", "sample.points=64",
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+    e3 = train_classifier(build_backbone("distance", hidden=16, k=8, layers=2), data, root / "e3",
+                          TrainSettings(epochs=15, batch_size=16, threads=1))
+    meta = torch.load(e3, weights_only=True)["meta"]
+    torch.manual_seed(0)
+    gate = build_backbone("vector_gate", scalars=8, vectors=2, layers=1, k=40, normals=True)
+    model = Classifier(gate, len(meta["classes"]), hidden=16, dropout=0.0)
+    se3 = save_checkpoint(root / "se3" / "checkpoint.pt", model, {
+        **meta, "backbone": {"name": gate.name, "options": gate.config_dict(), "symmetry": gate.symmetry},
+        "head": {"hidden": 16, "dropout": 0.0}})
+    one_each = root / "one_each"
+    for name in CLASSES:
+        src = sorted((DEMO / name).iterdir())[0]
+        (one_each / name).mkdir(parents=True)
+        (one_each / name / src.name).write_bytes(src.read_bytes())
+    return {"root": root, "data": data, "e3": e3, "se3": se3, "one_each": one_each}
+
+
+def first_mesh(name: str) -> Path:
+    return sorted((DEMO / name).iterdir())[0]
+
+
+def one_error_line(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: "), err
+    return err[0]
+
+
+def test_every_row_is_a_distribution_over_the_catalog(tiny):
+    result = predict_files(tiny["e3"], tiny["one_each"], poses=4, seed=0)
+    assert [r["file"].split("/")[0] for r in result["results"]] == sorted(CLASSES)
+    threshold = result["threshold"]["value"]
+    for r in result["results"]:
+        probs = np.array(list(r["probabilities"].values()))
+        # reference: demo_meshes/catalog.json names the classes; closed form: a softmax sums to 1
+        assert list(r["probabilities"]) == CLASSES and r["top"]["class"] in CLASSES
+        assert probs.sum() == pytest.approx(1.0, abs=1e-9) and (probs >= 0).all()
+        # closed form: top and runner-up are the two largest probabilities
+        first, second = np.sort(probs)[::-1][:2]
+        assert r["top"]["probability"] == pytest.approx(first) and r["runner_up"]["probability"] == pytest.approx(second)
+        assert r["runner_up"]["class"] != r["top"]["class"]
+        # common practice: open-set rejection accepts a score at or above the threshold
+        assert r["known"] == (r["score"] >= threshold)
+        assert r["answer"] == (r["top"]["class"] if r["known"] else UNKNOWN)
+        assert 1 <= r["poses_agreeing"] <= r["poses"] == 4
+        assert r["poses_agreed"] == (r["poses_agreeing"] == 4)
+
+
+def test_mesh_is_sampled_exactly_like_the_training_shards(tiny):
+    # reference: the val shard written by `shapes sample` (build_dataset draws instance i, copy k
+    # from SeedSequence([seed, i, k]))
+    meta = read_meta(tiny["data"])
+    val = load_split(tiny["data"], "val")
+    i = int(val.instance[0])
+    inst = meta["instances"][i]
+    ckpt_meta = torch.load(tiny["e3"], weights_only=True)["meta"]
+    gen = np.random.default_rng(np.random.SeedSequence([0, i, 0]))
+    cloud = read_input(Path(meta["catalog"]) / inst["file"], ckpt_meta, seed=gen)
+    np.testing.assert_array_equal(cloud.points, val.points[0])
+    np.testing.assert_array_equal(cloud.normals, val.normals[0])
+
+
+def test_threshold_is_the_numpy_quantile_of_validation_scores(tiny):
+    accept, poses = 0.8, 3
+    result = predict_files(tiny["e3"], first_mesh("hex_nut"), poses=poses, accept=accept, seed=5)
+    model, meta = load_classifier(tiny["e3"])
+    val = load_split(tiny["data"], "val")
+    rotations = random_poses("so3", poses, generator=torch_generator(5))
+    scores = []
+    with torch.no_grad():
+        for cloud in torch.as_tensor(val.points):
+            p = np.mean([torch.softmax(model(cloud[None] @ r.T), -1)[0].double().numpy() for r in rotations], axis=0)
+            # this E3 backbone cannot see hand: a handed class's score joins its twin's probability
+            scores.append(max(p[k] + (p[CLASSES.index(TWIN[c])] if TWIN[c] != c else 0.0)
+                              for k, c in enumerate(CLASSES)))
+    # reference: numpy.quantile (default linear rule) at 1 - accept
+    expected = np.quantile(scores, 1 - accept)
+    assert result["threshold"]["value"] == pytest.approx(expected, rel=1e-5)
+    assert result["threshold"]["accepted"] == pytest.approx(np.mean(np.array(scores) >= result["threshold"]["value"]))
+    assert result["threshold"]["validation_clouds"] == len(val) and result["threshold"]["accept"] == accept
+
+
+def test_an_invariant_backbone_gives_the_same_answer_in_any_pose_and_mirror_image(tiny, tmp_path):
+    mesh = trimesh.load(first_mesh("spur_gear"), process=False)
+    turned = mesh.copy()
+    rot = Rotation.random(random_state=3).as_matrix()  # reference: scipy's uniform random rotation
+    turned.vertices = mesh.vertices @ rot.T + np.array([40.0, -7.0, 3.0])
+    mesh.export(tmp_path / "gear.ply")
+    turned.export(tmp_path / "gear_turned.ply")
+    cloud = np.random.default_rng(1).normal(size=(64, 3)) * [3.0, 1.0, 0.5]
+    np.save(tmp_path / "cloud.npy", cloud)
+    np.save(tmp_path / "cloud_mirror.npy", cloud * [1.0, -1.0, 1.0])
+    rows = {r["file"]: r for r in predict_files(tiny["e3"], tmp_path, poses=3, seed=2)["results"]}
+    # reference: DESIGN.md, a distance-only network is invariant to rotations, reflections, translations
+    for a, b in (("gear.ply", "gear_turned.ply"), ("cloud.npy", "cloud_mirror.npy")):
+        pa, pb = (np.array(list(rows[f]["probabilities"].values())) for f in (a, b))
+        np.testing.assert_allclose(pa, pb, atol=1e-5)
+
+
+def test_a_handed_backbone_keeps_its_answer_in_any_pose_but_not_in_the_mirror(tiny, tmp_path):
+    points = np.random.default_rng(4).normal(size=(64, 3)) * [3.0, 1.5, 0.7]
+    normals = np.random.default_rng(5).normal(size=(64, 3))
+    rot = Rotation.random(random_state=6).as_matrix()  # reference: scipy's uniform random rotation
+    flip = np.diag([-1.0, 1.0, 1.0])
+    np.savez(tmp_path / "a.npz", points=points, normals=normals)
+    np.savez(tmp_path / "a_turned.npz", points=points @ rot.T, normals=normals @ rot.T)
+    np.savez(tmp_path / "a_mirror.npz", points=points @ flip, normals=normals @ flip)
+    rows = {r["file"]: np.array(list(r["probabilities"].values()))
+            for r in predict_files(tiny["se3"], tmp_path, poses=2, seed=0)["results"]}
+    # reference: DESIGN.md parity, triple products change sign under a reflection (SE3 backbone)
+    np.testing.assert_allclose(rows["a.npz"], rows["a_turned.npz"], atol=1e-5)
+    assert np.abs(rows["a.npz"] - rows["a_mirror.npz"]).max() > 1e-4
+
+
+def test_the_hand_caution_follows_the_backbone_symmetry(tiny):
+    # reference: README cautions, a model that cannot see handedness must not be used to sort handed parts
+    e3 = predict_files(tiny["e3"], tiny["one_each"], poses=2, accept=1.0, seed=0)["results"]
+    for r in e3:
+        handed = TWIN[r["top"]["class"]] != r["top"]["class"]
+        assert any(HAND_NOTE in n for n in r["notes"]) == (handed and r["known"])
+    assert any(r["notes"] for r in e3)  # 8 of the 16 classes are handed: some row carries the note
+    se3 = predict_files(tiny["se3"], tiny["one_each"], poses=2, accept=1.0, seed=0)["results"]
+    assert not any(r["notes"] for r in se3)
+
+
+def test_a_non_part_comes_out_unknown_when_the_threshold_is_high(tiny, tmp_path):
+    trimesh.creation.icosphere(subdivisions=3, radius=12.0).export(tmp_path / "ball.stl")
+    result = predict_files(tiny["e3"], tmp_path / "ball.stl", poses=4, accept=0.2, seed=0)
+    (row,) = result["results"]
+    # common practice: max-softmax open-set rejection; a sphere is no part of the catalog
+    assert row["known"] is False and row["answer"] == UNKNOWN and row["score"] < result["threshold"]["value"]
+    assert f"{UNKNOWN}, nearest {row['top']['class']}" in format_table(result)
+    # a lower acceptance share never lowers the threshold (quantiles are monotone)
+    lenient = predict_files(tiny["e3"], tmp_path / "ball.stl", poses=4, accept=0.99, seed=0)
+    assert lenient["threshold"]["value"] <= result["threshold"]["value"]
+
+
+def test_point_files_are_thinned_to_the_training_count_and_keep_their_normals(tiny, tmp_path):
+    mesh = trimesh.load(first_mesh("bushing"), process=False)
+    points, faces = trimesh.sample.sample_surface(mesh, 500, seed=0)  # reference: trimesh's sampler
+    np.savetxt(tmp_path / "dense.xyz", points)
+    trimesh.PointCloud(points).export(tmp_path / "bare.ply")
+    np.savez(tmp_path / "with_normals.npz", points=points, normals=mesh.face_normals[faces])
+    meta = torch.load(tiny["e3"], weights_only=True)["meta"]
+    dense = read_input(tmp_path / "dense.xyz", meta)
+    assert dense.points.shape == (64, 3) and dense.normals is None and "thinned to 64" in dense.source
+    # closed form: normalised to centroid 0 and unit RMS radius, as the shards are
+    np.testing.assert_allclose(dense.points.mean(0), 0.0, atol=1e-6)
+    assert np.mean(np.sum(dense.points.astype(np.float64) ** 2, axis=1)) == pytest.approx(1.0, abs=1e-5)
+    assert read_input(tmp_path / "bare.ply", meta).normals is None
+    with_normals = read_input(tmp_path / "with_normals.npz", meta)
+    np.testing.assert_allclose(np.linalg.norm(with_normals.normals, axis=1), 1.0, atol=1e-6)
+    rows = predict_files(tiny["se3"], tmp_path / "with_normals.npz", poses=2)["results"]
+    assert rows[0]["source"] == "points, 500 thinned to 64 with normals"
+    # a PLY vertex list with nx ny nz (the PLY format's normal properties), written by hand
+    normals = mesh.face_normals[faces[:64]] * 2.0  # not unit length: read_input rescales them
+    header = ("ply\nformat ascii 1.0\nelement vertex 64\n" + "".join(f"property float {k}\n" for k in
+              ("x", "y", "z", "nx", "ny", "nz")) + "end_header\n")
+    rows = "\n".join(" ".join(f"{v:.7f}" for v in row) for row in np.hstack([points[:64], normals]))
+    (tmp_path / "oriented.ply").write_text(header + rows + "\n")
+    oriented = read_input(tmp_path / "oriented.ply", meta)
+    np.testing.assert_allclose(oriented.normals, normals / 2.0, atol=1e-5)
+
+
+def test_same_seed_same_answer(tiny):
+    a = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
+    b = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
+    assert a == b  # reference: shapes.seeding convention, same seed gives the same result
+
+
+def test_cli_prints_a_table_and_writes_json(tiny, tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    out = tmp_path / "answers" / "predicted.json"
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={tiny['one_each']}", f"predict.out={out}",
+                 "predict.poses=2", "predict.threads=1"]) == 0
+    text = capsys.readouterr().out
+    saved = json.loads(out.read_text())  # reference: json.loads parses what was written
+    assert len(saved["results"]) == len(CLASSES) and saved["threshold"]["accept"] == 0.95
+    assert "rule" in saved["threshold"] and saved["symmetry"] == "E3"
+    assert "file" in text and "runner-up" in text and f"wrote {out}" in text
+    for r in saved["results"]:
+        assert r["file"] in text
+    assert not list(out.parent.glob(".*part*"))
+
+
+def test_verb_help_lists_the_predict_options(capsys):
+    assert main(["predict", "--help"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("shapes predict:") and "predict:" in out and "accept: 0.95" in out
+
+
+def _bad_inputs(tmp: Path) -> None:
+    (tmp / "empty").mkdir()
+    (tmp / "garbage.stl").write_bytes(b"\x00not a mesh at all" * 3)
+    np.save(tmp / "flat.npy", np.zeros((50, 2)))
+    np.save(tmp / "few.npy", np.random.default_rng(0).normal(size=(20, 3)))
+    np.save(tmp / "bare.npy", np.random.default_rng(0).normal(size=(100, 3)))
+    np.savez(tmp / "few_for_k.npz", points=np.random.default_rng(0).normal(size=(35, 3)),
+             normals=np.ones((35, 3)))
+    np.savez(tmp / "no_points.npz", cloud=np.zeros((40, 3)))
+    (tmp / "notes.doc").write_text("hello")
+    (tmp / "mixed").mkdir()
+    (tmp / "mixed" / "good.ply").write_bytes(first_mesh("hex_nut").read_bytes())
+    (tmp / "mixed" / "broken.stl").write_bytes(b"")
+
+
+@pytest.mark.parametrize("run,target,options,needle", [
+    ("e3", "nowhere.stl", [], "not found"),
+    ("e3", "empty", [], "holds no scan or mesh files"),
+    ("e3", "garbage.stl", [], "garbage.stl"),
+    ("e3", "flat.npy", [], "shape (N, 3), got (50, 2)"),
+    ("e3", "few.npy", [], "has 20 points; need at least 32"),
+    ("se3", "few_for_k.npz", [], "need at least 41 (the vector_gate backbone compares each point with its k = 40"),
+    ("se3", "bare.npy", [], "has no surface normals"),
+    ("e3", "no_points.npz", [], "should hold an array 'points'"),
+    ("e3", "notes.doc", [], "unsupported suffix '.doc'"),
+    ("e3", "mixed", [], "broken.stl is empty"),
+    ("e3", None, [], "predict.input is not set"),
+    ("e3", "bare.npy", ["predict.accept=1.5"], "predict.accept should be a share in (0, 1]"),
+    ("e3", "bare.npy", ["predict.regime=mirror"], "predict.regime should be one of aligned, z, so3"),
+    ("e3", "bare.npy", ["predict.poses=0"], "predict.poses should be an integer >= 1"),
+    ("nowhere", "bare.npy", [], "no checkpoint"),
+    ("e3", "bare.npy", ["predict.calibration=nowhere"], "cannot calibrate"),
+])
+def test_bad_input_gives_one_line_exit_2_and_writes_nothing(tiny, tmp_path, monkeypatch, capsys,
+                                                            run, target, options, needle):
+    monkeypatch.chdir(tmp_path)
+    _bad_inputs(tmp_path)
+    before = sorted(p.relative_to(tmp_path) for p in tmp_path.rglob("*"))
+    run_path = tiny[run].parent if run in tiny else tmp_path / run
+    argv = ["predict", f"run={run_path}", *options] + ([f"predict.input={tmp_path / target}"] if target else [])
+    assert main(argv) == 2
+    assert needle in one_error_line(capsys)
+    # nothing written: no predictions.json, no temporary file
+    assert sorted(p.relative_to(tmp_path) for p in tmp_path.rglob("*")) == before
+
+
+def test_a_failed_run_leaves_the_previous_json_untouched(tiny, tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    good = tmp_path / "good.npy"
+    np.save(good, np.random.default_rng(0).normal(size=(80, 3)))
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=1"]) == 0
+    written = (tmp_path / "predictions.json").read_bytes()
+    np.save(good, np.zeros((80, 4)))
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=1"]) == 2
+    capsys.readouterr()
+    assert (tmp_path / "predictions.json").read_bytes() == written
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["good.npy", "predictions.json"]
