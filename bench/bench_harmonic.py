@@ -44,15 +44,19 @@ def worker(spec: dict) -> dict:
     from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
 
     torch.manual_seed(0)
-    net = HarmonicAttentionBackbone(k=spec["k"], **CONFIGS[spec["l_max"]])
+    net = HarmonicAttentionBackbone(k=spec["k"], normals=spec["normals"], **CONFIGS[spec["l_max"]])
     points = torch.randn(spec["B"], spec["N"], 3, generator=torch.Generator().manual_seed(1))
+    normals = None
+    if spec["normals"]:  # random unit normals: the cost does not depend on their values
+        normals = torch.randn(spec["B"], spec["N"], 3, generator=torch.Generator().manual_seed(2))
+        normals = normals / normals.norm(dim=-1, keepdim=True)
     reference = spec["reference"]
     rss_before = _rss_mb()
     times, forward_times = [], []
     for rep in range(spec["repeats"] + 1):
         net.zero_grad(set_to_none=True)
         t0 = time.perf_counter()
-        out = net(points, reference=reference)
+        out = net(points, normals=normals, reference=reference)
         t1 = time.perf_counter()
         out.square().sum().backward()
         t2 = time.perf_counter()
@@ -151,6 +155,8 @@ def main(argv=None) -> None:
     parser.add_argument("--threads", type=int, default=1, help="torch threads per measurement (default 1)")
     parser.add_argument("--repeats", type=int, default=2, help="timed repeats after one warm-up")
     parser.add_argument("--quick", action="store_true", help="small sizes: a smoke test of the script")
+    parser.add_argument("--normals", action=argparse.BooleanOptionalAction, default=True,
+                        help="feed outward normals as the shipped configuration does (default; --no-normals: bare points)")
     parser.add_argument("--out", type=Path, default=OUT)
     args = parser.parse_args(argv)
     if args.worker:
@@ -159,7 +165,7 @@ def main(argv=None) -> None:
 
     from shapes._atomic import write_json
 
-    base = {"threads": args.threads, "repeats": args.repeats, "k": 16}
+    base = {"threads": args.threads, "repeats": args.repeats, "k": 16, "normals": args.normals}
     full = {"B": 2, "N": 256} if args.quick else {"B": 8, "N": 1024}
     small = {"B": 1, "N": 128} if args.quick else {"B": 1, "N": 512}
     sizes = [256, 512] if args.quick else [512, 1024, 2048, 4096, 8192]

@@ -6,7 +6,13 @@ import math
 import pytest
 import torch
 
-from shapes.backbones._equivariant import angular_pairs, layer_paths, masked_softmax, proper_parity
+from shapes.backbones._equivariant import (
+    GlobalVectorReadout,
+    angular_pairs,
+    layer_paths,
+    masked_softmax,
+    proper_parity,
+)
 from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
 from shapes.errors import ConfigError, InputError
 from shapes.geometry import random_improper, random_rotations, reflection, wigner_d
@@ -30,6 +36,14 @@ def rel(a, b):
 
 def random_cloud(b=1, n=64, seed=7, dtype=torch.float64):
     return torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
+
+
+NORMALS = {"k": 8, "normals": True}
+
+
+def random_normals(b=1, n=64, seed=17, dtype=torch.float64):
+    v = torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
+    return v / v.norm(dim=-1, keepdim=True)
 
 
 def helix_cloud(n=64, dtype=torch.float64):
@@ -136,29 +150,90 @@ def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
         {"parity": "even", "heads": 1},
         {"l_max": 3, "channels": {0: 4, 1: 2, 2: 2, 3: 2}, "layers": 2},
         {"l_max": 2, "channels": {0: 4, 2: 2}, "radius": 0.9, "cutoff": 0.9},  # a missing degree; radius graph
+        {"channels": {0: 8, 1: 4, 2: 2}, **NORMALS},
+        {"context": False},
     ],
-    ids=["default", "even", "l3", "radius"],
+    ids=["default", "even", "l3", "radius", "normals", "no-context"],
 )
 def test_fast_path_equals_dense_reference_with_gradients(options):
     # reference: the dense per-edge kernel implementation in the same module (explicit W(r_ij))
     net = make(**options)
     points = random_cloud(b=2, n=24, seed=3).requires_grad_(True)
+    inputs = [points]
+    extra = {}
+    if net.uses_normals:
+        extra["normals"] = random_normals(b=2, n=24, seed=4).requires_grad_(True)
+        inputs.append(extra["normals"])
     mask = torch.ones(2, 24, dtype=torch.bool)
     mask[1, -4:] = False
     weights = torch.randn(net.out_features, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
     results = []
     for reference in (False, True):
         net.zero_grad()
-        points.grad = None
-        out = net(points, mask, reference=reference)
+        for x in inputs:
+            x.grad = None
+        out = net(points, mask, reference=reference, **extra)
         (out * weights).sum().backward()
-        grads = [p.grad.clone() for p in net.parameters()] + [points.grad.clone()]
+        grads = [p.grad.clone() for p in net.parameters()] + [x.grad.clone() for x in inputs]
         results.append((out.detach(), grads))
     (fast, fast_grads), (ref, ref_grads) = results
     assert (fast - ref).abs().max() <= 1e-10 * ref.abs().max()
     for a, b in zip(fast_grads, ref_grads):
         assert (a - b).abs().max() <= 1e-10 * max(float(b.abs().max()), 1.0)
     assert max(float(g.abs().max()) for g in ref_grads) > 0
+    if net.uses_normals:
+        assert float(ref_grads[-1].abs().max()) > 0  # the output really depends on the normals
+
+
+# -- global context ---------------------------------------------------------------------------
+
+
+def test_global_vector_readout_matches_numpy_and_transforms_by_parity():
+    # reference: numpy.linalg.det and numpy dot products of the mixed vectors; det[Qa, Qb, Qc] = det Q det[a, b, c]
+    import numpy as np
+
+    torch.manual_seed(0)
+    readout = GlobalVectorReadout(6, chiral=True).double()
+    g = torch.randn(4, 6, 3, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    out = readout(g)
+    w = readout.mix.weight.detach().numpy().reshape(3, 6, 6)  # rows: a, b, c mixings
+    for b in range(4):
+        gb = g[b].numpy()
+        a, bb, c = (w[i] @ gb for i in range(3))  # (6, 3) each
+        scale = (gb**2).sum(-1).mean() + readout.floor
+        dots = (a * bb).sum(-1) / scale
+        dets = np.array([np.linalg.det(np.stack([a[i], bb[i], c[i]])) for i in range(6)]) / scale**1.5
+        np.testing.assert_allclose(out[b].detach().numpy(), np.concatenate([dots, dets]), rtol=1e-10, atol=1e-12)
+    # components in (y, z, x) order: polar vectors turn with the Wigner-D of degree 1; Q improper and proper
+    for Q in (random_improper(4, generator=torch.Generator().manual_seed(2), dtype=torch.float64),
+              random_rotations(4, generator=torch.Generator().manual_seed(3), dtype=torch.float64)):
+        moved = transform_features({(1, -1): g[:, None]}, Q)[(1, -1)][:, 0]
+        turned = readout(moved)
+        sign = torch.det(Q)[:, None]
+        assert rel(out[:, :6], turned[:, :6]) <= 1e-12  # dot products: invariant
+        assert rel(out[:, 6:] * sign, turned[:, 6:]) <= 1e-12  # triple products: times det Q
+    assert out[:, 6:].abs().min() > 1e-6  # both directions: the pseudo-scalars are not zero to start with
+    assert GlobalVectorReadout(6, chiral=False).width == 6
+
+
+def test_context_reaches_past_the_neighbourhood_and_context_off_stays_local():
+    # reference: DESIGN.md receptive field; without context a layer only gathers from its k neighbours
+    cloud = random_cloud(n=48, seed=21)
+    first = 0
+    near = torch.cdist(cloud[0], cloud[0])[first].argsort()  # nearest first
+    far_a, far_b = int(near[-1]), int(near[-2])
+    moved = cloud.clone()
+    step = torch.tensor([0.05, -0.03, 0.02], dtype=torch.float64)
+    moved[0, far_a] += step  # and the opposite on a second far point: the centroid stays put
+    moved[0, far_b] -= step
+    assert torch.allclose(cloud.mean(1), moved.mean(1), atol=1e-15)
+    for context, expect_change in ((False, False), (True, True)):
+        net = make(k=4, context=context)
+        before = net.forward_features(cloud)[0]
+        after = net.forward_features(moved)[0]
+        change = max(rel(before[t][:, first], after[t][:, first]) for t in before)
+        assert (change > 1e-6) == expect_change, (context, change)
+    assert make(context=False).out_features < make().out_features  # the global readout adds invariants
 
 
 # -- masks and numerics -----------------------------------------------------------------------
@@ -223,7 +298,7 @@ def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
     conf = OmegaConf.load("conf/backbone/harmonic_attention.yaml")
     built = instantiate(conf)
     assert isinstance(built, HarmonicAttentionBackbone)
-    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff", "normals"):
+    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff", "normals", "context"):
         assert getattr(built.config, key) == conf[key]
     assert built.config.channels == {int(k): v for k, v in conf.channels.items()}
 
@@ -263,14 +338,6 @@ def test_too_small_cloud_for_k_raises_input_error():
 
 
 # -- surface normals --------------------------------------------------------------------------
-
-NORMALS = {"k": 8, "normals": True}
-
-
-def random_normals(b=1, n=64, seed=17, dtype=torch.float64):
-    v = torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
-    return v / v.norm(dim=-1, keepdim=True)
-
 
 def threaded_cloud(n=96, depth=0.5, pitch=1.0, dtype=torch.float64):
     """Points on the cylinder r = 1, |z| <= 2, with the outward normals of a right-hand thread
@@ -392,28 +459,6 @@ def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
     assert rel(bare(cloud), bare(mirror[0])) <= 1e-9
 
 
-def test_fast_path_equals_dense_reference_with_normals_and_gradients():
-    # reference: the dense per-edge kernel implementation in the same module (explicit W(r_ij))
-    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    points = random_cloud(b=2, n=24, seed=3).requires_grad_(True)
-    normals = random_normals(b=2, n=24, seed=4).requires_grad_(True)
-    mask = torch.ones(2, 24, dtype=torch.bool)
-    mask[1, -4:] = False
-    weights = torch.randn(net.out_features, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
-    results = []
-    for reference in (False, True):
-        net.zero_grad()
-        points.grad = normals.grad = None
-        out = net(points, mask, normals=normals, reference=reference)
-        (out * weights).sum().backward()
-        results.append((out.detach(), [p.grad.clone() for p in net.parameters()] + [points.grad.clone(), normals.grad.clone()]))
-    (fast, fast_grads), (ref, ref_grads) = results
-    assert (fast - ref).abs().max() <= 1e-10 * ref.abs().max()
-    for a, b in zip(fast_grads, ref_grads):
-        assert (a - b).abs().max() <= 1e-10 * max(float(b.abs().max()), 1.0)
-    assert float(ref_grads[-1].abs().max()) > 0  # the output really depends on the normals
-
-
 def test_padding_with_junk_normals_changes_nothing_and_every_parameter_learns():
     # reference: DESIGN.md mask convention (True = real point); common practice: no dead parameters
     net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
@@ -450,6 +495,7 @@ def test_missing_or_misshapen_normals_raise_and_normals_false_ignores_them():
     "options,match",
     [
         ({"normals": "yes"}, r"normals should be true or false, got 'yes'"),
+        ({"context": 1}, r"context should be true or false, got 1"),
         ({"normals": True, "channels": {0: 8, 2: 4}}, r"needs channels for degree 1"),
     ],
 )

@@ -49,6 +49,7 @@ __all__ = [
     "EquivariantLinear",
     "EquivariantNorm",
     "GatedFeedForward",
+    "GlobalVectorReadout",
     "point_invariants",
     "invariant_width",
 ]
@@ -331,3 +332,34 @@ def point_invariants(x: dict, types: dict) -> torch.Tensor:
                 c = min(types[t], types[(l, -p)])
                 parts.append((v[:, :, :c] * x[(l, -p)][:, :, :c]).sum(-1) / math.sqrt(2 * l + 1))
     return torch.cat(parts, -1)  # (B, N, F)
+
+
+class GlobalVectorReadout(nn.Module):
+    """Invariants of a cloud's mean polar vectors: dot products and, if ``chiral``, triple products.
+
+    Three learned channel mixings ``a = W_a g``, ``b = W_b g``, ``c = W_c g`` of the pooled polar
+    vectors ``g (B, C, 3)`` (type ``(1, -1)``: ``g -> Q g`` for every orthogonal ``Q``) give, per
+    output channel, the proper scalar ``a . b / s`` and the pseudo-scalar
+    ``det[a, b, c] / s^(3/2)`` (``det[Qa, Qb, Qc] = det Q det[a, b, c]``), with
+    ``s = mean_C |g|^2 + floor``. Components are stored in the order ``(y, z, x)``, a cyclic
+    permutation of ``(x, y, z)``, which leaves cross and triple products unchanged. The floor keeps a
+    mirror-symmetric cloud, whose pooled vectors are rounding noise, from amplifying that noise.
+
+    Shape:
+        (B, C, 3) -> (B, width) with ``width = C`` (dot products), ``2 C`` if chiral
+    """
+
+    def __init__(self, channels: int, chiral: bool, floor: float = 1e-2):
+        super().__init__()
+        self.chiral = chiral
+        self.floor = floor
+        self.mix = nn.Linear(channels, 3 * channels, bias=False)  # a bias would not be a vector
+        self.width = channels * (2 if chiral else 1)
+
+    def forward(self, g: torch.Tensor) -> torch.Tensor:
+        scale = g.square().sum(-1).mean(-1, keepdim=True) + self.floor  # (B, 1)
+        a, b, c = self.mix(g.transpose(-1, -2)).transpose(-1, -2).chunk(3, dim=1)  # (B, C, 3) each
+        parts = [(a * b).sum(-1) / scale]
+        if self.chiral:
+            parts.append((torch.linalg.cross(a, b) * c).sum(-1) / scale**1.5)
+        return torch.cat(parts, -1)  # (B, width)

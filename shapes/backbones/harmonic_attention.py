@@ -38,9 +38,15 @@ For receiver ``i`` and its neighbours ``j`` (kNN, or within ``radius`` capped at
 ``R_P(d)`` is a per-path, per-input-channel radial weight from a small MLP on a Gaussian basis of
 ``d``, times a cosine cutoff; keys and values share it and differ by their channel mixings
 ``W^K_P``, ``W^V_P``. Keys exist only for output types the receiver has a query for (in the first
-layer: scalars). Then a gated point-wise feed-forward block. Readout: per point the scalars and
-pseudo-scalars, the norms of the ``l > 0`` channels and the proper-pseudo dot products; masked
-mean and max over the cloud.
+layer: scalars). Then a gated point-wise feed-forward block, whose input (with ``context: true``)
+also gets the cloud's mean of every feature type, mixed per type: the mean of equivariant
+features is equivariant, and it brings whole-part shape into every point. Readout: per point the
+scalars and pseudo-scalars, the norms of the ``l > 0`` channels and the proper-pseudo dot
+products, masked mean and max over the cloud; with ``context: true`` also the invariants of the
+cloud's mean polar vectors (:class:`~shapes.backbones._equivariant.GlobalVectorReadout`): their
+dot products and, in parity ``"full"``, their triple products, pseudo-scalars of the whole part.
+A bracket's hand is such a quantity: each of its plates is locally mirror-symmetric, only the
+arrangement of legs, gusset and holes is chiral.
 
 The fast path and its cost
 --------------------------
@@ -90,6 +96,7 @@ from shapes.backbones._equivariant import (
     EquivariantLinear,
     EquivariantNorm,
     GatedFeedForward,
+    GlobalVectorReadout,
     angular_pairs,
     coupling_matrix,
     invariant_width,
@@ -133,6 +140,7 @@ class HarmonicAttentionConfig:
     cutoff: float = 1.0  # in RMS radii of the normalised part (filters fade to 0 there); ~4x a 16-NN radius
     parity: str = "full"  # "full": tell mirror twins apart (SE3); "even": reflection-invariant (E3)
     normals: bool = False  # True: also take outward surface normals (B, N, 3); False keeps bare point clouds working
+    context: bool = True  # the cloud's mean of every feature type joins each layer and the readout (global shape, bracket hand)
 
     def __post_init__(self):
         self.l_max = _count(self.l_max, "l_max", 0)
@@ -164,6 +172,8 @@ class HarmonicAttentionConfig:
             )
         if self.radius is not None:
             self.radius = _positive(self.radius, "radius")
+        if not isinstance(self.context, bool):
+            raise ConfigError(f"context should be true or false, got {self.context!r}.")
 
 
 def _count(value, name: str, minimum: int) -> int:
@@ -311,7 +321,8 @@ class HarmonicAttentionLayer(nn.Module):
         {t: (B, N, C[t], 2l+1)} for ``types_in`` -> {t: (B, N, C[t], 2l+1)} for ``types_out``
     """
 
-    def __init__(self, types_in: dict, channels: dict, parity: str, heads: int, num_radial: int, radial_hidden: int):
+    def __init__(self, types_in: dict, channels: dict, parity: str, heads: int, num_radial: int, radial_hidden: int,
+                 context: bool = True):
         super().__init__()
         self.types_in = dict(types_in)
         self.heads = heads
@@ -367,17 +378,24 @@ class HarmonicAttentionLayer(nn.Module):
         self.out = EquivariantLinear(self.types_out, self.types_out)
         self.ff_norm = EquivariantNorm(self.types_out)
         self.ff = GatedFeedForward(self.types_out)
+        # The cloud's mean of each type, mixed per type, joins every point's feed-forward input:
+        # a mean of equivariant features is equivariant, so this keeps every type exactly.
+        self.context = EquivariantLinear(self.types_out, self.types_out) if context else None
         d_head = sum(c // heads * (2 * l + 1) for (l, _), c in types_in.items())
         self.scale = 1.0 / math.sqrt(d_head)
 
-    def forward(self, h: dict, edges: EdgeFrame, reference: bool = False) -> dict:
+    def forward(self, h: dict, edges: EdgeFrame, mask: torch.Tensor, reference: bool = False) -> dict:
         x = self.norm(h)
         q = self.query(x)
         hidden = self.radial_hidden(edges.rbf)  # (B, N, k, radial_hidden)
         attend = self._attend_reference if reference else self._attend_fast
         msg = self.out(attend(x, q, hidden, edges))
         h = {t: msg[t] + h[t] if t in h else msg[t] for t in self.types_out}
-        update = self.ff(self.ff_norm(h))
+        y = self.ff_norm(h)
+        if self.context is not None:
+            pooled = self.context({t: masked_mean(v, mask).unsqueeze(1) for t, v in y.items()})  # (B, 1, C, 2l+1)
+            y = {t: v + pooled[t] for t, v in y.items()}
+        update = self.ff(y)
         return {t: h[t] + update[t] for t in self.types_out}
 
     # -- fast path ---------------------------------------------------------------------------
@@ -543,14 +561,18 @@ class HarmonicAttentionBackbone(Backbone):
         self.uses_normals = c.normals
         layers = []
         for _ in range(c.layers):
-            layers.append(HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden))
+            layers.append(
+                HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden, c.context)
+            )
             types = layers[-1].types_out
         self.layers = nn.ModuleList(layers)
         self.types_out = types
         self.final_norm = EquivariantNorm(types)
+        vectors = types.get((1, -1), 0) if c.context else 0
+        self.global_readout = GlobalVectorReadout(vectors, chiral=c.parity == "full") if vectors else None
         self._coupling: dict = {}  # (l_in, dtype, device) -> coupling matrix, built from float64 tables
         self.symmetry = "SE3" if c.parity == "full" else "E3"
-        self.out_features = 2 * invariant_width(types)
+        self.out_features = 2 * invariant_width(types) + (self.global_readout.width if self.global_readout else 0)
 
     def _coupling_matrix(self, l_in: int, dtype, device) -> torch.Tensor:
         key = (l_in, dtype, str(device))
@@ -589,8 +611,12 @@ class HarmonicAttentionBackbone(Backbone):
         """Invariant features ``(B, out_features)``; ``normals (B, N, 3)`` are needed with ``normals: true``
         and ignored otherwise."""
         per_layer, mask = self._run(points, mask, normals, reference)
-        inv = point_invariants(self.final_norm(per_layer[-1]), self.types_out)  # (B, N, F)
-        return torch.cat([masked_mean(inv, mask), masked_max(inv, mask)], -1)  # (B, 2F)
+        last = self.final_norm(per_layer[-1])
+        inv = point_invariants(last, self.types_out)  # (B, N, F)
+        parts = [masked_mean(inv, mask), masked_max(inv, mask)]  # (B, F) each
+        if self.global_readout is not None:
+            parts.append(self.global_readout(masked_mean(last[(1, -1)], mask)))  # (B, G)
+        return torch.cat(parts, -1)
 
     def _run(self, points, mask, normals, reference):
         mask = check_points(points, mask)
@@ -607,7 +633,7 @@ class HarmonicAttentionBackbone(Backbone):
         h = self._inputs(points, mask, normals, edges)
         per_layer = []
         for layer in self.layers:
-            h = layer(h, edges, reference)
+            h = layer(h, edges, mask, reference)
             per_layer.append(h)
         return per_layer, mask
 
