@@ -52,9 +52,21 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
         meta = payload["meta"]
         backbone = build_backbone(meta["backbone"]["name"], **meta["backbone"]["options"])
         model = Classifier(backbone, len(meta["classes"]), **meta["head"])
-        model.load_state_dict(payload["state_dict"])
+        fit = model.load_state_dict(payload["state_dict"], strict=False)
     except (KeyError, RuntimeError, EOFError, TypeError, pickle.UnpicklingError) as exc:
-        raise DataError(f"checkpoint '{path}' cannot be read: {str(exc).splitlines()[0]}") from exc
+        # torch's messages span lines ("Error(s) in loading ...:" then the details): keep one line
+        detail = " ".join(line.strip() for line in str(exc).splitlines() if line.strip())
+        raise DataError(f"checkpoint '{path}' cannot be read: {detail[:400]}") from exc
+    if fit.missing_keys or fit.unexpected_keys:
+        written = meta.get("versions", {}).get("shapes", "an unknown version")
+        parts = [f"{len(keys)} {what}, e.g. '{keys[0]}'"
+                 for keys, what in ((fit.missing_keys, "weights missing"), (fit.unexpected_keys, "unexpected"))
+                 if keys]
+        raise DataError(
+            f"checkpoint '{path}' does not fit the {meta['backbone']['name']} backbone built from its saved options "
+            f"({'; '.join(parts)}): it was written by shapes {written} with other network code; retrain it with "
+            "`shapes train`."
+        )
     return model.to(device).eval(), meta
 
 

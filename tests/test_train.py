@@ -85,3 +85,27 @@ def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
     torch.testing.assert_close(x[3], points[3], rtol=0, atol=0)
     x2, y2 = reflect_to_twins(x, y, twin_of, chosen)
     assert torch.equal(x2, points) and torch.equal(y2, labels)
+
+
+def test_a_checkpoint_that_does_not_fit_the_network_code_gives_one_line(tiny_data, tmp_path):
+    # common practice: a checkpoint from other network code must fail loudly, never load half its weights
+    from shapes.errors import DataError
+    from shapes.evaluate import load_classifier
+
+    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+                            TrainSettings(epochs=1, batch_size=16, threads=1, max_minutes=1e-8))
+    model, _ = load_classifier(ckpt)  # the unchanged checkpoint loads
+    payload = torch.load(ckpt, weights_only=True)
+    dropped = sorted(payload["state_dict"])[0]
+    del payload["state_dict"][dropped]
+    payload["state_dict"]["backbone.extra.weight"] = torch.zeros(1)
+    torch.save(payload, ckpt)
+    with pytest.raises(DataError, match=rf"1 weights missing, e\.g\. '{dropped}'; 1 unexpected") as info:
+        load_classifier(ckpt)
+    assert "\n" not in str(info.value) and "retrain it with `shapes train`" in str(info.value)
+    payload["state_dict"][dropped] = torch.zeros(3, 3, 3)  # wrong shape: torch's multi-line error, one line here
+    del payload["state_dict"]["backbone.extra.weight"]
+    torch.save(payload, ckpt)
+    with pytest.raises(DataError, match="cannot be read: Error") as info:
+        load_classifier(ckpt)
+    assert "\n" not in str(info.value) and "size mismatch" in str(info.value)
