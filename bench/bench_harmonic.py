@@ -44,7 +44,8 @@ def worker(spec: dict) -> dict:
     from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
 
     torch.manual_seed(0)
-    net = HarmonicAttentionBackbone(k=spec["k"], normals=spec["normals"], **CONFIGS[spec["l_max"]])
+    options = {"edge_block": spec["edge_block"]} if "edge_block" in spec else {}
+    net = HarmonicAttentionBackbone(k=spec["k"], normals=spec["normals"], **CONFIGS[spec["l_max"]], **options)
     points = torch.randn(spec["B"], spec["N"], 3, generator=torch.Generator().manual_seed(1))
     normals = None
     if spec["normals"]:  # random unit normals: the cost does not depend on their values
@@ -200,6 +201,14 @@ def main(argv=None) -> None:
             pair["speedup"] = pair["reference"]["seconds_fwd_bwd"] / pair["fast"]["seconds_fwd_bwd"]
         result["fast_vs_reference"][f"l_max={l_max}"] = pair
 
+    # the same network in one piece: blocks of receivers only bound the size of the temporaries
+    print(f"l_max = 2: fast in one piece at B={full['B']}, N={full['N']} ...", flush=True)
+    whole = with_rate(run({**base, **full, "l_max": 2, "reference": False, "edge_block": 10**12}))
+    blocks = result["full_size_fast"]["l_max=2"]
+    result["blocks_vs_one_piece"] = {"one_piece": whole, "blocks": "full_size_fast l_max=2 (the default edge_block)"}
+    if "error" not in whole and "error" not in blocks:
+        result["blocks_vs_one_piece"]["speedup"] = whole["seconds_fwd_bwd"] / blocks["seconds_fwd_bwd"]
+
     scaling = []
     for n in sizes:
         print(f"scaling: l_max = 2, B = 1, N = {n} ...", flush=True)
@@ -211,6 +220,7 @@ def main(argv=None) -> None:
     result["targets"] = {
         "speedup_l_max_2": {"target": ">= 5", "measured": result["fast_vs_reference"]["l_max=2"].get("speedup")},
         "loglog_slope": {"target": "<= 1.2", "measured": slope},
+        "blocks_vs_one_piece": {"target": "> 1", "measured": result["blocks_vs_one_piece"].get("speedup")},
     }
     result["machine"]["load_average_end"] = os.getloadavg()
     result["memory_method"] = "peak RSS (ru_maxrss) of a fresh subprocess per measurement; peak_extra_mb subtracts the RSS before the first forward"

@@ -216,6 +216,28 @@ def test_global_vector_readout_matches_numpy_and_transforms_by_parity():
     assert GlobalVectorReadout(6, chiral=False).width == 6
 
 
+@pytest.mark.parametrize("block", [1, 7 * 8, 10**9], ids=["one-edge", "uneven", "one-piece"])
+def test_fast_path_in_blocks_of_receivers_equals_one_piece_with_gradients(block):
+    # reference: the same network with edge_block large enough for one piece (the block size only bounds temporaries)
+    whole = make(**NORMALS, edge_block=10**9)
+    split = make(**NORMALS, edge_block=block)
+    split.load_state_dict(whole.state_dict())
+    points = random_cloud(b=2, n=30, seed=4).requires_grad_(True)
+    normals = random_normals(b=2, n=30, seed=5)
+    mask = torch.ones(2, 30, dtype=torch.bool)
+    mask[0, -3:] = False
+    grads = []
+    outs = []
+    for net in (whole, split):
+        points.grad = None
+        out = net(points, mask, normals=normals)
+        out.square().sum().backward()
+        outs.append(out.detach())
+        grads.append(points.grad.clone())
+    assert rel(outs[0], outs[1]) <= 1e-12 and rel(grads[0], grads[1]) <= 1e-12
+    assert split.layers[0].edge_block == block
+
+
 def test_context_reaches_past_the_neighbourhood_and_context_off_stays_local():
     # reference: DESIGN.md receptive field; without context a layer only gathers from its k neighbours
     cloud = random_cloud(n=48, seed=21)
@@ -496,6 +518,7 @@ def test_missing_or_misshapen_normals_raise_and_normals_false_ignores_them():
     [
         ({"normals": "yes"}, r"normals should be true or false, got 'yes'"),
         ({"context": 1}, r"context should be true or false, got 1"),
+        ({"edge_block": 0}, r"edge_block should be an integer >= 1, got 0"),
         ({"normals": True, "channels": {0: 8, 2: 4}}, r"needs channels for degree 1"),
     ],
 )

@@ -140,6 +140,7 @@ class HarmonicAttentionConfig:
     cutoff: float = 1.0  # in RMS radii of the normalised part (filters fade to 0 there); ~4x a 16-NN radius
     parity: str = "full"  # "full": tell mirror twins apart (SE3); "even": reflection-invariant (E3)
     normals: bool = False  # True: also take outward surface normals (B, N, 3); False keeps bare point clouds working
+    edge_block: int = 16384  # edges per block of the fast path: bounds its temporaries; results do not depend on it
     context: bool = True  # the cloud's mean of every feature type joins each layer and the readout (global shape, bracket hand)
 
     def __post_init__(self):
@@ -152,6 +153,7 @@ class HarmonicAttentionConfig:
         self.k = _count(self.k, "k", 1)
         self.num_radial = _count(self.num_radial, "num_radial", 1)
         self.radial_hidden = _count(self.radial_hidden, "radial_hidden", 1)
+        self.edge_block = _count(self.edge_block, "edge_block", 1)
         if self.parity not in PARITY_MODES:
             raise ConfigError(f"parity should be one of {list(PARITY_MODES)}, got {self.parity!r}.")
         bad = {l: c for l, c in self.channels.items() if c % self.heads}
@@ -220,6 +222,12 @@ class EdgeFrame(NamedTuple):
     envelope: torch.Tensor
     harmonics: list
     basis: dict | None
+
+    def receivers(self, block: slice) -> "EdgeFrame":
+        """The edges of the receivers ``block`` (dim 1), for the fast path (harmonics left out)."""
+        basis = None if self.basis is None else {l: b[:, block] for l, b in self.basis.items()}
+        return EdgeFrame(self.index[:, block], self.valid[:, block], self.vectors[:, block], self.length[:, block],
+                         self.rbf[:, block], self.envelope[:, block], [], basis)
 
 
 NORMAL_SCALARS, NORMAL_VECTORS, NORMAL_PSEUDO = 5, 4, 3  # widths of the three parts of NormalInputs
@@ -322,8 +330,9 @@ class HarmonicAttentionLayer(nn.Module):
     """
 
     def __init__(self, types_in: dict, channels: dict, parity: str, heads: int, num_radial: int, radial_hidden: int,
-                 context: bool = True):
+                 context: bool = True, edge_block: int = 16384):
         super().__init__()
+        self.edge_block = edge_block
         self.types_in = dict(types_in)
         self.heads = heads
         self.paths = layer_paths(types_in, list(channels), parity)
@@ -387,9 +396,11 @@ class HarmonicAttentionLayer(nn.Module):
     def forward(self, h: dict, edges: EdgeFrame, mask: torch.Tensor, reference: bool = False) -> dict:
         x = self.norm(h)
         q = self.query(x)
-        hidden = self.radial_hidden(edges.rbf)  # (B, N, k, radial_hidden)
-        attend = self._attend_reference if reference else self._attend_fast
-        msg = self.out(attend(x, q, hidden, edges))
+        if reference:
+            msg = self._attend_reference(x, q, self.radial_hidden(edges.rbf), edges)
+        else:
+            msg = self._attend_blocks(x, q, edges)
+        msg = self.out(msg)
         h = {t: msg[t] + h[t] if t in h else msg[t] for t in self.types_out}
         y = self.ff_norm(h)
         if self.context is not None:
@@ -404,7 +415,26 @@ class HarmonicAttentionLayer(nn.Module):
         """Radial weights already spread over basis columns: ``(B, N, k, C*W)``, one GEMM."""
         return nn.functional.linear(hidden, self.radial_out.weight[rows], self.radial_out.bias[rows])
 
-    def _attend_fast(self, x: dict, q: dict, hidden: torch.Tensor, edges: EdgeFrame) -> dict:
+    def _attend_blocks(self, x: dict, q: dict, edges: EdgeFrame) -> dict:
+        """The fast path over blocks of about ``edge_block`` edges (whole receivers), concatenated.
+
+        Every per-edge quantity belongs to one receiver, so blocks of receivers are independent and
+        the result does not depend on the block size; what changes is the size of each temporary.
+        Large per-edge tensors are memory-bound (and, freshly allocated, page-faulted each pass):
+        measured on 2 cores, B = 8, N = 1024 in blocks ran about 1.6x faster than in one piece.
+        """
+        B, N, K = edges.index.shape
+        rows = max(1, self.edge_block // max(B * K, 1))
+        if rows >= N:
+            return self._attend_fast(x, q, edges, slice(None))
+        parts = [self._attend_fast(x, q, edges, slice(start, start + rows)) for start in range(0, N, rows)]
+        return {t: torch.cat([part[t] for part in parts], 1) for t in parts[0]}
+
+    def _attend_fast(self, x: dict, q: dict, edges: EdgeFrame, block: slice) -> dict:
+        """Attention for the receivers ``block`` (senders may be any point)."""
+        edges = edges.receivers(block)
+        q = {t: v[:, block] for t, v in q.items()}
+        hidden = self.radial_hidden(edges.rbf)  # (B, n, k, radial_hidden)
         # The cutoff envelope is a per-edge scalar and everything is linear in the radial weights,
         # so it multiplies the logits and the attention weights instead of every radial weight.
         H = self.heads
@@ -562,7 +592,8 @@ class HarmonicAttentionBackbone(Backbone):
         layers = []
         for _ in range(c.layers):
             layers.append(
-                HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden, c.context)
+                HarmonicAttentionLayer(types, c.channels, c.parity, c.heads, c.num_radial, c.radial_hidden, c.context,
+                                       c.edge_block)
             )
             types = layers[-1].types_out
         self.layers = nn.ModuleList(layers)
