@@ -27,8 +27,7 @@ import trimesh
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.data import MESH_SUFFIXES, MIN_SCAN_POINTS, SCAN_SUFFIXES, load_split, read_mesh, read_scan
-from shapes.data import farthest_point_subsample, normalise
-from shapes.data._build import _cloud as _training_cloud  # the very sampler the shards came from
+from shapes.data import farthest_point_subsample, normalise, sample_cloud
 from shapes.errors import ConfigError, DataError, InputError, MeshError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
 from shapes.geometry import random_poses
@@ -182,7 +181,7 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
         settings = {"points": target, "oversample": int(sampler.get("oversample", 2)),
                     "noise": float(sampler.get("noise", 0.0))}
         scan = sampler.get("mode") == "scan"
-        points, normals, _ = _training_cloud(read_mesh(path), scan, settings, gen)
+        points, normals, _ = sample_cloud(read_mesh(path), scan, settings, gen)  # as the shards were
         source = f"mesh, {'virtual scan' if scan else 'surface'} of {target} points"
     else:
         if suffix == ".npz":

@@ -6,7 +6,7 @@ serve them to torch. Every user mistake raises :class:`~shapes.errors.MeshError`
 :class:`~shapes.errors.DataError` with a one-line message naming the file.
 """
 
-from shapes.data._build import DEFAULT_COPIES, MODES, build_dataset
+from shapes.data._build import DEFAULT_COPIES, MODES, build_dataset, sample_cloud
 from shapes.data._catalog import Catalog, Instance, read_catalog
 from shapes.data._load import CloudDataset, CloudSplit, collate_clouds, load_split, read_meta
 from shapes.data._read import (
@@ -40,6 +40,7 @@ __all__ = [
     "SPLITS",
     "split_groups",
     "build_dataset",
+    "sample_cloud",
     "DEFAULT_COPIES",
     "MODES",
     "read_meta",

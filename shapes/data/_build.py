@@ -29,7 +29,7 @@ from shapes.data._sample import farthest_point_subsample, normalise, sample_surf
 from shapes.data._scan import scan_view
 from shapes.data._split import SPLITS, split_groups
 
-__all__ = ["build_dataset", "DEFAULT_COPIES", "MODES", "META_FILE", "SHARD_KEYS"]
+__all__ = ["build_dataset", "sample_cloud", "DEFAULT_COPIES", "MODES", "META_FILE", "SHARD_KEYS"]
 
 # Copies per instance: training sees each part in several samplings; test has more than val
 # because its accuracy is the number reported.
@@ -88,8 +88,13 @@ def _scan_copies(n_copies: int, mode: str, scan_fraction: float) -> int:
     return math.floor(scan_fraction * n_copies + 0.5)  # half up: 1 copy at 0.5 is a scan
 
 
-def _cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, float]:
-    """One normalised cloud: points (N, 3), normals (N, 3), scale in mesh units."""
+def sample_cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, float]:
+    """One normalised cloud as the shards hold it: points (N, 3), normals (N, 3), scale in mesh units.
+
+    ``scan``: a single-view virtual scan, else the whole surface (``s["oversample"]`` times the
+    points, then farthest-point thinned); ``s["noise"]`` in RMS radii along the normals. Used for
+    the shards and by ``shapes predict``, so a new mesh is sampled exactly like the training data.
+    """
     n = s["points"]
     if scan:
         pts, nrm = scan_view(mesh, n, seed=gen, noise=s["noise"])
@@ -188,7 +193,7 @@ def build_dataset(
         n_scans = _scan_copies(n_copies, s["mode"], s["scan_fraction"])
         for k in range(n_copies):
             gen = np.random.default_rng(np.random.SeedSequence([s["seed"], i, k]))
-            pts, nrm, scale = _cloud(mesh, k < n_scans, s, gen)
+            pts, nrm, scale = sample_cloud(mesh, k < n_scans, s, gen)
             out = shards[split]
             out["points"].append(pts.astype(np.float32))
             out["normals"].append(nrm.astype(np.float32))
