@@ -119,13 +119,25 @@ def _plain(node):
 
 def _backbone_from_file(name: str, options: dict | None = None):
     """Instantiate ``conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
-    from hydra.utils import instantiate
     from omegaconf import OmegaConf
 
     path = CONF_DIR / "backbone" / f"{name}.yaml"
     if not path.is_file():
         raise ConfigError(f"unknown backbone '{name}'; choose one of: {', '.join(_groups()['backbone'])}.")
-    return instantiate(OmegaConf.merge(OmegaConf.load(path), options or {}))
+    return _build_backbone(OmegaConf.merge(OmegaConf.load(path), options or {}))
+
+
+def _build_backbone(node):
+    """Instantiate a backbone config node; a bad option gives our one-line error, not Hydra's wrapper."""
+    from hydra.errors import InstantiationException
+    from hydra.utils import instantiate
+
+    try:
+        return instantiate(node)
+    except InstantiationException as exc:
+        if isinstance(exc.__cause__, ShapesError):
+            raise exc.__cause__ from None
+        raise
 
 
 def _latest_run(run: str) -> str:
@@ -167,17 +179,16 @@ def _run_sample(cfg) -> None:
 
 def _run_train(cfg) -> None:
     from hydra.core.hydra_config import HydraConfig
-    from hydra.utils import instantiate
     from omegaconf import OmegaConf
 
     from shapes._atomic import write_text
     from shapes.train import TrainSettings, train_classifier
 
     run_dir = Path(HydraConfig.get().runtime.output_dir)
-    backbone = instantiate(cfg.backbone)
-    settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
-                             extra={"config": OmegaConf.to_container(cfg, resolve=True)})
     try:
+        backbone = _build_backbone(cfg.backbone)
+        settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
+                                 extra={"config": OmegaConf.to_container(cfg, resolve=True)})
         ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
     except BaseException:
         if run_dir.is_dir() and not any(run_dir.iterdir()):

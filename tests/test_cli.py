@@ -39,6 +39,8 @@ def test_verb_help(capsys):
     (["frob"], "unknown verb 'frob'"),
     (["train", "backbone=distance,plain"], "add -m"),
     (["eval", "-m"], "-m (sweeps) is for 'shapes train'"),
+    (["train", "backbone=harmonic_attention", "backbone.l_max=5"], "l_max should be in 0..3, got 5."),
+    (["train", "backbone=harmonic_attention", "backbone.edge_block=0"], "edge_block should be an integer >= 1, got 0."),
 ])
 def test_bad_options_give_one_line(argv, needle, capsys):
     assert main(argv) == 2
@@ -51,10 +53,14 @@ def test_bad_values_give_one_line(tmp_path, monkeypatch, capsys):
     assert "no checkpoint" in one_error_line(capsys)
 
 
-def test_training_on_a_missing_dataset_leaves_no_run_folder(tmp_path, monkeypatch, capsys):
+@pytest.mark.parametrize("argv,needle", [
+    (["train", "data=nowhere"], "meta.json"),
+    (["train", "backbone=harmonic_attention", "backbone.k=0"], "k should be an integer >= 1, got 0."),
+], ids=["missing-dataset", "bad-backbone-option"])
+def test_a_failed_training_leaves_no_run_folder(argv, needle, tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
-    assert main(["train", f"data={tmp_path / 'nowhere'}"]) == 2
-    assert "meta.json" in one_error_line(capsys)
+    assert main(argv) == 2
+    assert needle in one_error_line(capsys)
     assert not list((tmp_path / "runs" / "train").glob("*"))
 
 
