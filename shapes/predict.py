@@ -27,13 +27,13 @@ import trimesh
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.data import MESH_SUFFIXES, MIN_SCAN_POINTS, SCAN_SUFFIXES, load_split, read_mesh, read_scan
-from shapes.data import farthest_point_subsample, normalise, sample_cloud
+from shapes.data import estimate_normals, farthest_point_subsample, normalise, sample_cloud
 from shapes.errors import ConfigError, DataError, InputError, MeshError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
 from shapes.geometry import random_poses
 from shapes.seeding import rng, torch_generator
 
-__all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "Cloud", "find_inputs", "read_input",
+__all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "Cloud", "find_inputs", "read_input",
            "pose_averaged", "known_scores", "calibrate", "predict_files", "format_table"]
 
 # every scan suffix the data readers take, plus .npz holding 'points' (N, 3) and optional 'normals'
@@ -41,6 +41,7 @@ SUPPORTED = tuple(sorted(set(SCAN_SUFFIXES) | {".npz"}))
 REGIMES = ("aligned", "z", "so3")  # a mirror pose would change a handed part into its twin
 UNKNOWN = "unknown (not a known part)"
 HAND_NOTE = "hand not determinable by this backbone"
+NORMALS_K = 16  # neighbourhood of the PCA normals estimated for a point file that has none
 
 
 @dataclass
@@ -48,7 +49,8 @@ class Cloud:
     """One input made ready for the network.
 
     points : (N, 3) float32, centroid 0 and unit RMS radius
-    normals : (N, 3) float32 unit vectors, or None when the file has none
+    normals : (N, 3) float32 unit vectors (from the file or estimated), or None when the file has
+        none and the backbone takes none
     source : how the cloud was made, for the report
     """
 
@@ -160,13 +162,17 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
     Point files (``.xyz``/``.txt``/``.csv`` rows, ``.npy`` (N, 3), a PLY without faces, optionally
     with ``nx ny nz``, ``.npz`` with ``points`` (N, 3) and optional ``normals`` (N, 3)) are thinned
     by farthest-point subsampling when they hold more points than the training clouds, and kept
-    whole when they hold fewer (but at least enough for the backbone's neighbourhoods).
+    whole when they hold fewer (but at least enough for the backbone's neighbourhoods). When the
+    backbone takes normals and a point file has none, they are estimated on the thinned cloud by
+    local PCA over ``NORMALS_K`` neighbours, oriented by MST propagation and turned outward (see
+    :func:`shapes.data.estimate_normals`); ``source`` says so.
     ``seed`` (None, int or numpy Generator) drives the sampling and the thinning.
 
     Raises
     ------
     MeshError
-        Unreadable file, wrong array shape, too few points, or no normals for a backbone that needs them.
+        Unreadable file, wrong array shape, too few points, or no normals for a backbone that needs
+        them when they cannot be estimated either.
     """
     path = Path(path)
     suffix = path.suffix.lower()
@@ -205,10 +211,13 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
         except InputError as exc:  # e.g. every point at one spot
             raise MeshError(f"scan file {path}: {exc}") from None
         source += " with normals" if normals is not None else ""
-    if needs_normals and normals is None:
-        raise MeshError(f"scan file {path} has no surface normals, but the {meta['backbone']['name']} backbone of "
-                        "this run takes them (normals: true); give a mesh, a PLY with nx ny nz or a .npz with "
-                        "'normals', or use a run trained with backbone.normals=false.")
+        if needs_normals and normals is None:
+            try:
+                normals, _ = estimate_normals(points, k=NORMALS_K)
+            except InputError as exc:  # e.g. too few points for the neighbourhoods
+                raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
+                                "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
+            source += f", normals estimated (local PCA, k={NORMALS_K}, MST orientation)"
     return Cloud(points.astype(np.float32), None if normals is None else normals.astype(np.float32), source)
 
 

@@ -207,6 +207,21 @@ def test_point_files_are_thinned_to_the_training_count_and_keep_their_normals(ti
     np.testing.assert_allclose(oriented.normals, normals / 2.0, atol=1e-5)
 
 
+def test_a_bare_xyz_file_gets_estimated_normals_for_a_backbone_that_takes_them(tiny, tmp_path):
+    sphere = np.random.default_rng(3).normal(size=(300, 3))
+    sphere /= np.linalg.norm(sphere, axis=1, keepdims=True)
+    np.savetxt(tmp_path / "ball.xyz", sphere * 20.0 + 5.0)  # millimetres, off centre
+    meta = torch.load(tiny["se3"], weights_only=True)["meta"]
+    cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True)
+    assert cloud.source == "points, 300 thinned to 64, normals estimated (local PCA, k=16, MST orientation)"
+    # closed form: the outward normal of a sphere at p (centred at 0 after normalising) is p / |p|
+    radial = cloud.points / np.linalg.norm(cloud.points, axis=1, keepdims=True)
+    assert np.mean(np.sum(cloud.normals * radial, axis=1) > 0.9) >= 0.95
+    rows = predict_files(tiny["se3"], tmp_path / "ball.xyz", poses=2)["results"]
+    assert "normals estimated" in rows[0]["source"] and sum(rows[0]["probabilities"].values()) == pytest.approx(1.0)
+    assert read_input(tmp_path / "ball.xyz", meta).normals is None  # a backbone without normals gets none
+
+
 def test_same_seed_same_answer(tiny):
     a = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
     b = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
@@ -256,7 +271,6 @@ def _bad_inputs(tmp: Path) -> None:
     ("e3", "flat.npy", [], "shape (N, 3), got (50, 2)"),
     ("e3", "few.npy", [], "has 20 points; need at least 32"),
     ("se3", "few_for_k.npz", [], "need at least 41 (the vector_gate backbone compares each point with its k = 40"),
-    ("se3", "bare.npy", [], "has no surface normals"),
     ("e3", "no_points.npz", [], "should hold an array 'points'"),
     ("e3", "notes.doc", [], "unsupported suffix '.doc'"),
     ("e3", "mixed", [], "broken.stl is empty"),
