@@ -8,8 +8,8 @@ serve them to torch. Every user mistake raises :class:`~shapes.errors.MeshError`
 
 from shapes.data._build import DEFAULT_COPIES, MODES, build_dataset, sample_cloud
 from shapes.data._catalog import Catalog, Instance, read_catalog
-from shapes.data._normals import estimate_normals
 from shapes.data._load import CloudDataset, CloudSplit, collate_clouds, load_split, read_meta
+from shapes.data._normals import estimate_normals
 from shapes.data._read import (
     MESH_SUFFIXES,
     MIN_SCAN_POINTS,
