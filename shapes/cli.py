@@ -1,6 +1,6 @@
 """The ``shapes`` command: one verb per job; every verb takes Hydra overrides (``key=value``).
 
-Hydra lives here and in ``conf/``; the jobs below it take plain arguments.
+Hydra lives here and in ``shapes/conf/``; the jobs below it take plain arguments.
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ from shapes.errors import ConfigError, ShapesError
 
 __all__ = ["main", "VERBS", "CONF_DIR"]
 
-CONF_DIR = Path(__file__).resolve().parent.parent / "conf"
+CONF_DIR = Path(__file__).resolve().parent / "conf"  # shipped inside the package (wheel package data)
 
 VERBS: dict[str, str] = {
     "parts": "write the demo catalog of CAD-like parts (meshes + catalog.json) to meshes=<folder>",
@@ -118,7 +118,7 @@ def _plain(node):
 
 
 def _backbone_from_file(name: str, options: dict | None = None):
-    """Instantiate ``conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
+    """Instantiate ``shapes/conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
     from omegaconf import OmegaConf
 
     path = CONF_DIR / "backbone" / f"{name}.yaml"
