@@ -105,7 +105,7 @@ def _verb_help(verb: str, overrides: list[str]) -> str:
              f"usage: shapes {verb} [key=value ...]" + (" [-m]" if verb == "train" else "") + " [--traceback]", "",
              "choices:"]
     lines += [f"  {g}: {', '.join(opts)}" for g, opts in _groups().items()]
-    lines += ["  train.poses: aligned, z, so3", "  eval.poses: any of aligned, z, so3, mirror",
+    lines += ["  train.poses: cad, upright, any", "  eval.poses: a list from cad, upright, any, mirrored",
               "  sample.mode: surface, scan, mixed"]
     lines += ["", "options (current values; override any as key=value):", OmegaConf.to_yaml(shown).rstrip()]
     return "\n".join(lines)

@@ -1,7 +1,7 @@
 """The evaluation job: score a trained classifier under the pose-robustness protocol.
 
-Test regimes: ``aligned`` (CAD frame), ``z`` (turned about the vertical axis), ``so3``
-(uniform random rotation) and ``mirror`` (a reflection then a uniform rotation, scored against
+Test regimes: ``cad`` (as modelled), ``upright`` (turned about the vertical axis), ``any``
+(uniform random rotation) and ``mirrored`` (a reflection then a uniform rotation, scored against
 the mirror-twin map: a handed part's mirror image must be called its twin, an achiral part's
 mirror image keeps its class). Also accuracy against rotation angle and sensor noise, and the
 measured invariance error of the logits, so a claim of invariance is a number.
@@ -23,7 +23,7 @@ from shapes._runtime import set_threads
 from shapes.backbones import Classifier, build_backbone
 from shapes.data import load_split
 from shapes.errors import ConfigError, DataError
-from shapes.geometry import POSE_REGIMES, axis_angle_to_matrix, random_improper, random_poses, random_rotations
+from shapes.geometry import POSE_REGIMES, check_regime, axis_angle_to_matrix, random_improper, random_poses, random_rotations
 from shapes.seeding import torch_generator
 from shapes.train import CHECKPOINT
 
@@ -139,9 +139,10 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
 
     Each test cloud is scored under ``repeats`` random poses per regime.
     """
-    unknown = [p for p in poses if p not in POSE_REGIMES]
-    if unknown:
-        raise ConfigError(f"eval.poses has unknown regime(s) {unknown}; choose from {', '.join(POSE_REGIMES)}.")
+    if isinstance(poses, str):
+        raise ConfigError(f"eval.poses should be a list of regimes (e.g. '[any,mirrored]'), got the string {poses!r} instead.")
+    for p in poses:
+        check_regime(p, POSE_REGIMES, "eval.poses")
     if repeats < 1:
         raise ConfigError(f"eval.repeats must be >= 1, got {repeats}.")
     set_threads(threads)
@@ -165,7 +166,7 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
         for _ in range(repeats):
             rot = random_poses(regime, len(x), generator=gen)
             preds.append(logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy())
-            targets.append(twin_index[y] if regime == "mirror" else y)
+            targets.append(twin_index[y] if regime == "mirrored" else y)
         results["regimes"][regime] = score(np.concatenate(preds), np.concatenate(targets), classes, meta["handed"])
     few = min(len(x), 32)
     results["invariance"] = invariance_errors(model, x[:few], seed=seed, normals=nrm[:few])

@@ -30,7 +30,7 @@ from shapes.data import MESH_SUFFIXES, MIN_SCAN_POINTS, SCAN_SUFFIXES, load_spli
 from shapes.data import estimate_normals, farthest_point_subsample, normalise, sample_cloud
 from shapes.errors import ConfigError, DataError, InputError, MeshError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
-from shapes.geometry import random_poses
+from shapes.geometry import check_regime, random_poses
 from shapes.seeding import rng, torch_generator
 
 __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "Cloud", "find_inputs", "read_input",
@@ -38,7 +38,7 @@ __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "Cloud",
 
 # every scan suffix the data readers take, plus .npz holding 'points' (N, 3) and optional 'normals'
 SUPPORTED = tuple(sorted(set(SCAN_SUFFIXES) | {".npz"}))
-REGIMES = ("aligned", "z", "so3")  # a mirror pose would change a handed part into its twin
+REGIMES = ("cad", "upright", "any")  # a mirror pose would change a handed part into its twin
 UNKNOWN = "unknown (not a known part)"
 HAND_NOTE = "hand not determinable by this backbone"
 NORMALS_K = 16  # neighbourhood of the PCA normals estimated for a point file that has none
@@ -68,7 +68,7 @@ def _check(value, name: str, ok: bool, expected: str):
 def _check_options(poses, regime, accept, batch_size) -> None:
     _check(poses, "poses", isinstance(poses, int) and not isinstance(poses, bool) and poses >= 1,
            "an integer >= 1")
-    _check(regime, "regime", regime in REGIMES, f"one of {', '.join(REGIMES)}")
+    check_regime(regime, REGIMES, "predict.regime")
     _check(accept, "accept", isinstance(accept, (int, float)) and not isinstance(accept, bool)
            and 0.0 < accept <= 1.0, "a share in (0, 1]")
     _check(batch_size, "batch_size", isinstance(batch_size, int) and batch_size >= 1, "an integer >= 1")
@@ -307,7 +307,7 @@ def _row(path: Path, root: Path, cloud: Cloud, probs: np.ndarray, votes: np.ndar
     }
 
 
-def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: int = 8, regime: str = "so3",
+def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: int = 8, regime: str = "any",
                   accept: float = 0.95, calibration: str | os.PathLike | None = None, seed: int = 0,
                   batch_size: int = 32, threads: int | None = None, out: str | os.PathLike | None = None) -> dict:
     """Classify every scan or mesh in ``inputs`` (a file or a folder) with the run's checkpoint.

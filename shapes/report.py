@@ -12,10 +12,10 @@ from shapes._atomic import atomic_path, write_text
 __all__ = ["run_report", "comparison_report", "plot_confusion", "plot_angle_sweep"]
 
 REGIME_NOTES = {
-    "aligned": "as modelled in CAD",
-    "z": "turned about the vertical axis",
-    "so3": "uniform random rotation",
-    "mirror": "reflected then rotated; scored against the mirror twin",
+    "cad": "as modelled in CAD",
+    "upright": "turned about the vertical axis, as on a conveyor",
+    "any": "uniform random rotation",
+    "mirrored": "reflected then rotated; scored against the mirror twin",
 }
 
 
@@ -107,7 +107,7 @@ def run_report(metrics: dict, out_dir: str | os.PathLike) -> Path:
     out_dir = Path(out_dir)
     name = metrics["backbone"]["name"]
     pngs = []
-    for regime in ("so3", "mirror"):
+    for regime in ("any", "mirrored"):
         if regime in metrics["regimes"]:
             pngs.append(plot_confusion(metrics, regime, out_dir / f"confusion_{regime}.png").name)
     inv = metrics["invariance"]
@@ -133,7 +133,7 @@ def comparison_report(runs: dict[str, dict], out_dir: str | os.PathLike, *, titl
     head = "| backbone | symmetry | " + " | ".join(regimes) + " | handed classes under mirror | rotation error | reflection change |"
     rows = [head, "|---|---|" + "---|" * len(regimes) + "---|---|---|"]
     for name, m in runs.items():
-        mirror = m["regimes"].get("mirror", {})
+        mirror = m["regimes"].get("mirrored", {})
         rows.append(f"| {name} | {m['backbone']['symmetry']} | "
                     + " | ".join(_pct(m["regimes"][r]["accuracy"]) for r in regimes)
                     + f" | {_pct(mirror.get('handed_accuracy'))} | {_sci(m['invariance']['rotation'])} | "

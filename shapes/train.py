@@ -22,12 +22,14 @@ from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
 from shapes.errors import ConfigError
-from shapes.geometry import POSE_REGIMES, random_poses
+from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
 __all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins", "CHECKPOINT"]
 
 CHECKPOINT = "checkpoint.pt"
+
+TRAIN_REGIMES = POSE_REGIMES[:3]  # a mirrored training pose would teach a handed part its twin's shape
 
 
 @dataclass
@@ -37,7 +39,7 @@ class TrainSettings:
     lr: float = 2e-3  # AdamW peak rate after warm-up
     weight_decay: float = 1e-4  # mild: the head is small, the data is clean
     warmup: float = 0.05  # fraction of steps with a linear ramp-up, so early large gradients don't derail
-    poses: str = "aligned"  # aligned | z | so3: how training clouds are turned each step
+    poses: str = "cad"  # cad | upright | any: how training clouds are turned each step
     jitter: float = 0.0  # Gaussian noise (in RMS radii) added to training points; 0 keeps CAD clean
     mirror: float = 0.0  # share of training clouds reflected (x -> -x) and labelled as their mirror
     # twin (achiral classes keep theirs): the very same points under both hands, so a model cannot
@@ -118,8 +120,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     ``train_history.json`` (one row per epoch). Both are renamed into place when complete.
     """
     s = settings or TrainSettings()
-    if s.poses not in ("aligned", "z", "so3"):
-        raise ConfigError(f"train.poses should be one of aligned, z, so3; got '{s.poses}'.")
+    check_regime(s.poses, TRAIN_REGIMES, "train.poses")
     if not 0.0 <= s.mirror <= 1.0:
         raise ConfigError(f"train.mirror should be a share between 0 and 1, got {s.mirror}.")
     if s.epochs < 1 or s.batch_size < 1:

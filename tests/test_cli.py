@@ -106,10 +106,10 @@ def test_sample_train_eval(tiny_data, tmp_path, monkeypatch):
     assert (run / "config.yaml").is_file() and (run / "train_history.json").is_file()
     assert main(["eval", "run=latest", "eval.repeats=1"]) == 0
     metrics = json.loads((run / "metrics.json").read_text())
-    assert set(metrics["regimes"]) == {"aligned", "z", "so3", "mirror"}
+    assert set(metrics["regimes"]) == {"cad", "upright", "any", "mirrored"}
     # E3 backbone: its measured invariance must be float32 round-off
     assert metrics["invariance"]["rotation"] < 1e-4 and metrics["invariance"]["reflection"] < 1e-4
-    assert (run / "report.md").is_file() and (run / "confusion_so3.png").is_file()
+    assert (run / "report.md").is_file() and (run / "confusion_any.png").is_file()
     assert not list(run.glob(".*part*"))
 
 

@@ -143,15 +143,19 @@ def test_same_seed_same_rotations():
 
 
 def test_pose_regimes():
-    assert POSE_REGIMES == ("aligned", "z", "so3", "mirror")
+    assert POSE_REGIMES == ("cad", "upright", "any", "mirrored")
     eye = torch.eye(3)
-    assert torch.equal(random_poses("aligned", 3), eye.expand(3, 3, 3))
+    assert torch.equal(random_poses("cad", 3), eye.expand(3, 3, 3))
     dets = {r: torch.linalg.det(random_poses(r, 50, torch_generator(0), torch.float64)) for r in POSE_REGIMES}
-    assert torch.allclose(dets["so3"], torch.ones(50, dtype=torch.float64))
-    assert torch.allclose(dets["mirror"], -torch.ones(50, dtype=torch.float64))
-    assert random_poses("so3", 2, dtype=torch.float64).dtype == torch.float64
-    with pytest.raises(ConfigError, match=r"aligned.*z.*so3.*mirror.*'tumble'"):
+    assert torch.allclose(dets["any"], torch.ones(50, dtype=torch.float64))
+    assert torch.allclose(dets["mirrored"], -torch.ones(50, dtype=torch.float64))
+    assert random_poses("any", 2, dtype=torch.float64).dtype == torch.float64
+    with pytest.raises(ConfigError, match=r"cad.*upright.*any.*mirrored.*'tumble'"):
         random_poses("tumble", 3)
+    # an old name gets one line that names the new one
+    for old, new in (("aligned", "cad"), ("z", "upright"), ("so3", "any"), ("mirror", "mirrored")):
+        with pytest.raises(ConfigError, match=f"'{old}' is now called '{new}'"):
+            random_poses(old, 1)
 
 
 def test_apply_pose_convention():

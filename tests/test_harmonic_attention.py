@@ -2,6 +2,7 @@
 fast path against the dense reference, masks, numerics and option validation."""
 
 import math
+from pathlib import Path
 
 import pytest
 import torch
@@ -317,7 +318,7 @@ def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
 
     net = HarmonicAttentionBackbone(channels={"0": 16, "1": 8, "2": 4})
     assert net.config.channels == {0: 16, 1: 8, 2: 4}
-    conf = OmegaConf.load("conf/backbone/harmonic_attention.yaml")
+    conf = OmegaConf.load(Path(__file__).parents[1] / "shapes/conf/backbone/harmonic_attention.yaml")
     built = instantiate(conf)
     assert isinstance(built, HarmonicAttentionBackbone)
     for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff", "normals", "context"):

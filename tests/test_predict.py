@@ -110,7 +110,7 @@ def test_threshold_is_the_numpy_quantile_of_validation_scores(tiny):
     result = predict_files(tiny["e3"], first_mesh("hex_nut"), poses=poses, accept=accept, seed=5)
     model, meta = load_classifier(tiny["e3"])
     val = load_split(tiny["data"], "val")
-    rotations = random_poses("so3", poses, generator=torch_generator(5))
+    rotations = random_poses("any", poses, generator=torch_generator(5))
     scores = []
     with torch.no_grad():
         for cloud in torch.as_tensor(val.points):
@@ -276,7 +276,8 @@ def _bad_inputs(tmp: Path) -> None:
     ("e3", "mixed", [], "broken.stl is empty"),
     ("e3", None, [], "predict.input is not set"),
     ("e3", "bare.npy", ["predict.accept=1.5"], "predict.accept should be a share in (0, 1]"),
-    ("e3", "bare.npy", ["predict.regime=mirror"], "predict.regime should be one of aligned, z, so3"),
+    ("e3", "bare.npy", ["predict.regime=mirrored"], "predict.regime should be one of cad, upright, any"),
+    ("e3", "bare.npy", ["predict.regime=so3"], "predict.regime 'so3' is now called 'any'"),
     ("e3", "bare.npy", ["predict.poses=0"], "predict.poses should be an integer >= 1"),
     ("nowhere", "bare.npy", [], "no checkpoint"),
     ("e3", "bare.npy", ["predict.calibration=nowhere"], "cannot calibrate"),

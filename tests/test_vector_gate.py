@@ -266,7 +266,7 @@ def test_registry_builds_it_and_the_yaml_matches_the_config():
 
     model = build_backbone("vector_gate", **SMALL)
     assert isinstance(model, VectorGateBackbone)
-    conf = yaml.safe_load((Path(__file__).parents[1] / "conf/backbone/vector_gate.yaml").read_text())
+    conf = yaml.safe_load((Path(__file__).parents[1] / "shapes/conf/backbone/vector_gate.yaml").read_text())
     assert conf.pop("_target_") == "shapes.backbones.vector_gate.VectorGateBackbone"
     fields = {f.name: f.default for f in dataclasses.fields(VectorGateBackbone.Config)}
     assert set(conf) == set(fields)

@@ -21,6 +21,8 @@ from shapes.geometry._poses import (
     quaternion_to_matrix,
     random_improper,
     random_poses,
+    check_regime,
+    RENAMED_REGIMES,
     random_reflections,
     random_rotations,
     random_z_rotations,
@@ -44,6 +46,8 @@ __all__ = [
     "random_reflections",
     "random_improper",
     "random_poses",
+    "check_regime",
+    "RENAMED_REGIMES",
     "apply_pose",
     # harmonics
     "L_MAX",

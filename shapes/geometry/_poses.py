@@ -27,11 +27,16 @@ __all__ = [
     "random_reflections",
     "random_improper",
     "random_poses",
+    "check_regime",
+    "RENAMED_REGIMES",
     "apply_pose",
 ]
 
 # Order matters for reports: from the easiest pose regime to the hardest.
-POSE_REGIMES = ("aligned", "z", "so3", "mirror")
+POSE_REGIMES = ("cad", "upright", "any", "mirrored")
+# Names used before the pose regimes got their own; an old name gives one line naming the new one.
+RENAMED_REGIMES = {"aligned": "cad", "z": "upright", "so3": "any", "mirror": "mirrored"}
+
 
 
 def _safe_normalize(v: torch.Tensor) -> torch.Tensor:
@@ -265,6 +270,19 @@ def random_improper(
     return (r @ h).to(dtype)
 
 
+def check_regime(regime, allowed, option: str) -> str:
+    """Return ``regime`` if it is one of ``allowed``; else raise one line naming the choices.
+
+    An old regime name (``aligned``, ``z``, ``so3``, ``mirror``) gets its new name in the message.
+    """
+    if isinstance(regime, str) and regime in allowed:
+        return regime
+    if isinstance(regime, str) and regime in RENAMED_REGIMES:
+        raise ConfigError(f"{option} '{regime}' is now called '{RENAMED_REGIMES[regime]}'; "
+                          f"choose from {', '.join(allowed)}.")
+    raise ConfigError(f"{option} should be one of {', '.join(allowed)}, got {regime!r} instead.")
+
+
 def random_poses(
     regime: str, n: int, generator: torch.Generator | None = None, dtype=torch.float32, device=None
 ) -> torch.Tensor:
@@ -272,9 +290,9 @@ def random_poses(
 
     Parameters
     ----------
-    regime : {"aligned", "z", "so3", "mirror"}
-        ``aligned``: identity (CAD frame); ``z``: uniform turn about +z; ``so3``: Haar rotation;
-        ``mirror``: reflection then Haar rotation (see :func:`random_improper`).
+    regime : {"cad", "upright", "any", "mirrored"}
+        ``cad``: identity (as modelled); ``upright``: uniform turn about +z (as on a conveyor);
+        ``any``: Haar rotation; ``mirrored``: reflection then Haar rotation (see :func:`random_improper`).
     n : int
         Number of poses.
 
@@ -283,16 +301,17 @@ def random_poses(
     (n, 3, 3) float
     """
     n = check_count(n, "n")
-    if regime == "aligned":
+    check_regime(regime, POSE_REGIMES, "pose regime")
+    if regime == "cad":
         eye = torch.eye(3, dtype=dtype, device=_device_of(generator, device))
         return eye.expand(n, 3, 3).clone()
-    if regime == "z":
+    if regime == "upright":
         return random_z_rotations(n, generator, dtype, device)
-    if regime == "so3":
+    if regime == "any":
         return random_rotations(n, generator, dtype, device)
-    if regime == "mirror":
+    if regime == "mirrored":
         return random_improper(n, generator, dtype, device)
-    raise ConfigError(f"pose regime should be one of {list(POSE_REGIMES)}, got {regime!r} instead.")
+    raise AssertionError(regime)  # unreachable: check_regime above
 
 
 def apply_pose(points: torch.Tensor, R: torch.Tensor) -> torch.Tensor:
