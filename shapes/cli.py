@@ -170,8 +170,8 @@ def _run_sample(cfg) -> None:
 
     s = cfg.sample
     out = build_dataset(cfg.meshes, cfg.data, points=s.points, copies=_plain(s.copies), mode=s.mode,
-                        scan_fraction=s.scan_fraction, oversample=s.oversample, noise=s.noise, seed=cfg.seed,
-                        progress=True)
+                        scan_fraction=s.scan_fraction, oversample=s.oversample, noise=s.noise,
+                        normals=s.normals, normals_k=s.normals_k, seed=cfg.seed, progress=True)
     meta = read_meta(out)
     print(f"wrote {sum(meta['counts'].values())} clouds of {s.points} points "
           f"({', '.join(f'{k} {v}' for k, v in meta['counts'].items())}) for {len(meta['classes'])} classes to {out}/")
@@ -227,6 +227,7 @@ def _run_demo(cfg) -> None:
         raise ConfigError(f"demo.minutes names unknown backbone(s) {unknown}; "
                           f"choose from {', '.join(_groups()['backbone'])}.")
     report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
+                      mode=cfg.sample.mode, scan_fraction=cfg.sample.scan_fraction, normals=cfg.sample.normals,
                       seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror)
     print(f"demo report: {report}")
 
@@ -240,9 +241,14 @@ def _run_predict(cfg) -> None:
                           "(predict.input=<path>).")
     result = predict_files(_latest_run(cfg.run), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
                            calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
-                           out=p.out)
+                           out=p.out, units=p.units, clean=_plain(p.clean), normals=p.normals,
+                           viewpoint=_plain(p.viewpoint))
     print(format_table(result))
     print(f"wrote {p.out}")
+    if result["failed"]:  # every other file was classified; the status tells a script some were not
+        print(f"error: {result['failed']} of {len(result['results'])} file(s) could not be classified; "
+              f"see their rows in {p.out}", file=sys.stderr)
+        raise SystemExit(1)
 
 
 def _task(cfg) -> None:

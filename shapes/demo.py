@@ -22,11 +22,15 @@ __all__ = ["run_demo"]
 def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[str, Callable[[], Backbone]], *,
              points: int = 512, copies: dict | None = None, epochs: int = 12, seed: int = 0,
              threads: int | None = None, repeats: int = 3, minutes: dict[str, float] | None = None,
-             mirror: float = 0.0) -> Path:
+             mirror: float = 0.0, mode: str = "mixed", scan_fraction: float = 0.5,
+             normals: str = "estimated") -> Path:
     """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path.
 
     ``minutes`` gives a backbone a wall-time budget for training (its learning rate anneals within
     it; ``epochs`` is then an upper bound); ``mirror`` is ``TrainSettings.mirror`` for every backbone.
+    ``mode``, ``scan_fraction`` and ``normals`` are the sampler's (:func:`shapes.data.build_dataset`): by
+    default half the clouds are single-view virtual scans and every cloud's normals are estimated
+    from its points, so the models are ready for bare scan files.
     """
     minutes = minutes or {}
     started = time.perf_counter()
@@ -38,7 +42,8 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
         write_demo_catalog(meshes, seed=seed)
     data = out / "data"
     print(f"[demo] sampling {points}-point clouds from {meshes}/", flush=True)
-    build_dataset(meshes, data, points=points, copies=copies or {"train": 6, "val": 2, "test": 3}, seed=seed)
+    build_dataset(meshes, data, points=points, copies=copies or {"train": 6, "val": 2, "test": 3}, seed=seed,
+                  mode=mode, scan_fraction=scan_fraction, normals=normals)
     meta = read_meta(data)
     runs = {}
     for name, make in backbones.items():

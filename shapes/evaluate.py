@@ -5,6 +5,11 @@ Test regimes: ``cad`` (as modelled), ``upright`` (turned about the vertical axis
 the mirror-twin map: a handed part's mirror image must be called its twin, an achiral part's
 mirror image keeps its class). Also accuracy against rotation angle and sensor noise, and the
 measured invariance error of the logits, so a claim of invariance is a number.
+
+Scans are a test condition of their own: when the test split holds single-view virtual scans
+(``sample.mode`` scan or mixed), every regime is also scored on the scans and on the full surfaces
+apart, and the scans' accuracy under uniform random poses is given against the share of the
+part's surface each scan shows.
 """
 
 from __future__ import annotations
@@ -21,7 +26,7 @@ from sklearn.metrics import balanced_accuracy_score, confusion_matrix
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.backbones import Classifier, build_backbone
-from shapes.data import load_split
+from shapes.data import SCAN, SURFACE, load_split
 from shapes.errors import ConfigError, DataError
 from shapes.geometry import POSE_REGIMES, check_regime, axis_angle_to_matrix, random_improper, random_poses, random_rotations
 from shapes.seeding import torch_generator
@@ -31,6 +36,7 @@ __all__ = ["load_classifier", "find_checkpoint", "logits_under_poses", "score", 
            "evaluate_run"]
 
 ANGLES_DEG = (0, 30, 60, 90, 120, 150, 180)
+VISIBLE_BINS = (0.0, 0.2, 0.3, 0.4, 0.5, 1.0)  # edges of the visible-share bins of the scans' curve
 NOISE_LEVELS = (0.0, 0.01, 0.02, 0.05)  # in RMS radii of the normalised part
 
 
@@ -161,13 +167,20 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
     gen = torch_generator(seed)
     results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": meta["backbone"],
                      "repeats": repeats, "test_clouds": int(len(x)), "classes": classes, "regimes": {}}
+    kind = np.tile(np.asarray(test.kind), repeats)
     for regime in poses:
         preds, targets = [], []
         for _ in range(repeats):
             rot = random_poses(regime, len(x), generator=gen)
             preds.append(logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy())
             targets.append(twin_index[y] if regime == "mirrored" else y)
-        results["regimes"][regime] = score(np.concatenate(preds), np.concatenate(targets), classes, meta["handed"])
+        pred, target = np.concatenate(preds), np.concatenate(targets)
+        results["regimes"][regime] = score(pred, target, classes, meta["handed"])
+        results["regimes"][regime]["by_kind"] = {
+            name: _kind_score(pred[kind == value], target[kind == value], classes, meta["handed"])
+            for name, value in (("surface", SURFACE), ("scan", SCAN))}
+    results["scans"] = _scan_condition(model, x, nrm, y, test, twin_index, classes, meta["handed"], gen,
+                                       repeats, batch_size)
     few = min(len(x), 32)
     results["invariance"] = invariance_errors(model, x[:few], seed=seed, normals=nrm[:few])
     if sweeps:
@@ -176,6 +189,43 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
     if write:
         write_json(ckpt.parent / "metrics.json", results)
     return results
+
+
+def _kind_score(pred: np.ndarray, target: np.ndarray, classes, handed) -> dict | None:
+    """Accuracy and handed accuracy of one kind of cloud, or None when the split has none of it."""
+    if len(target) == 0:
+        return None
+    m = score(pred, target, classes, handed)
+    return {k: m[k] for k in ("accuracy", "handed_accuracy", "achiral_accuracy", "count")}
+
+
+def _scan_condition(model, x, nrm, y, test, twin_index, classes, handed, gen, repeats, batch_size) -> dict:
+    """The test split's virtual scans alone: accuracy under uniform random poses and mirrored, and
+    accuracy (random poses) against the share of the surface each scan shows."""
+    sel = np.flatnonzero(np.asarray(test.kind) == SCAN)
+    if len(sel) == 0:
+        return {"count": 0, "note": "the test split holds no virtual scans; sample with sample.mode=mixed or scan"}
+    xs, ns, ys = x[sel], nrm[sel], y[sel]
+    visible = np.asarray(test.visible)[sel]
+    out: dict = {"count": int(len(sel)), "visible_mean": float(visible.mean())}
+    hits_any = None
+    for regime in ("any", "mirrored"):
+        preds, targets = [], []
+        for _ in range(repeats):
+            rot = random_poses(regime, len(xs), generator=gen)
+            preds.append(logits_under_poses(model, xs, rot, batch_size, ns).argmax(-1).numpy())
+            targets.append(twin_index[ys] if regime == "mirrored" else ys)
+        pred, target = np.concatenate(preds), np.concatenate(targets)
+        out[regime] = _kind_score(pred, target, classes, handed)
+        if regime == "any":
+            hits_any = (pred == target).reshape(repeats, -1).mean(axis=0)  # (S,) per scan
+    curve = {}
+    for lo, hi in zip(VISIBLE_BINS[:-1], VISIBLE_BINS[1:]):
+        inside = (visible >= lo) & (visible < hi) if hi < 1.0 else (visible >= lo)
+        if inside.any():
+            curve[f"{lo:.1f}-{hi:.1f}"] = {"accuracy": float(hits_any[inside].mean()), "count": int(inside.sum())}
+    out["visible_sweep"] = curve
+    return out
 
 
 def _angle_sweep(model, x, nrm, y, gen, batch_size) -> dict:

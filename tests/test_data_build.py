@@ -96,7 +96,7 @@ def test_meta_content(built):
     assert meta["instances"][0] == {"class": "hand_r", "file": "hand_r/hand_r_g1.stl", "group": "g1",
                                     "split": meta["instances"][0]["split"]}
     assert meta["sampler"]["points"] == 48 and meta["sampler"]["copies"] == SMALL["copies"]
-    assert meta["sampler"]["mode"] == "surface" and meta["seed"] == 3
+    assert meta["sampler"]["mode"] == "mixed" and meta["seed"] == 3
     assert meta["catalog"] == str((base / "cat").resolve())
     assert set(meta["versions"]) == {"shapes", "numpy", "trimesh", "torch"}
     assert meta["versions"]["trimesh"] == trimesh.__version__
@@ -154,6 +154,31 @@ def test_scan_and_mixed_modes(built, tmp_path):
     # mixed: copy 0 of each instance is a scan, copy 1 a surface sample
     assert one_sided(mixed, "train") == [True, False] * (len(one_sided(mixed, "train")) // 2)
     assert read_meta(mixed)["sampler"]["scan_fraction"] == 0.5
+    # every cloud says what it is: kind 1 for a virtual scan, 0 for a full surface
+    assert set(load_split(scan, "train").kind.tolist()) == {1}
+    assert set(load_split(surface, "train").kind.tolist()) == {0}
+    assert load_split(mixed, "train").kind.tolist() == [1, 0] * (len(load_split(mixed, "train").kind) // 2)
+    assert np.all(load_split(surface, "train").visible == 1.0)
+
+
+def test_default_mode_is_mixed_and_estimated_normals_are_unit_and_facing(built, tmp_path):
+    base, out = built
+    assert read_meta(out)["sampler"]["mode"] == "mixed"  # the default: meshes and scans alike
+    copies = {"train": 2, "val": 1, "test": 1}
+    est = build_dataset(base / "cat", tmp_path / "est", points=64, copies=copies, mode="scan", seed=1,
+                        normals="estimated", normals_k=10)
+    mesh = build_dataset(base / "cat", tmp_path / "mesh", points=64, copies=copies, mode="scan", seed=1)
+    a, b = load_split(est, "train"), load_split(mesh, "train")
+    np.testing.assert_array_equal(a.points, b.points)  # the same scans; only the normals differ
+    np.testing.assert_allclose(np.linalg.norm(a.normals, axis=-1), 1.0, atol=1e-5)
+    assert not np.array_equal(a.normals, b.normals)
+    # on the flat faces of a block the PCA normal is the face normal (closed form) up to sign; the
+    # single-view rule turns them toward the sensor, as the mesh's faces seen by the scan are
+    block = a.labels == a.classes.index("block")
+    agree = np.einsum("mni,mni->mn", a.normals[block], b.normals[block])
+    assert (agree > 0).mean() > 0.9 and np.median(agree) > 0.95  # edges of a 64-point block tilt some
+    assert read_meta(est)["sampler"]["normals"]["source"] == "estimated"
+    assert read_meta(est)["sampler"]["normals"]["k"] == 10
 
 
 def test_bad_mesh_leaves_nothing(tmp_path):
@@ -204,6 +229,8 @@ def test_out_dir_guards_and_replace(built, tmp_path):
     ({"scan_fraction": 1.5}, "scan_fraction"),
     ({"noise": -1.0}, "noise"),
     ({"seed": -1}, "seed"),
+    ({"normals": "faces"}, "normals should be one of"),
+    ({"normals": "estimated", "normals_k": 2}, "normals_k should be an integer >= 3"),
 ])
 def test_bad_options(built, tmp_path, kwargs, message):
     base, _ = built

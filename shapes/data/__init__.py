@@ -6,8 +6,19 @@ serve them to torch. Every user mistake raises :class:`~shapes.errors.MeshError`
 :class:`~shapes.errors.DataError` with a one-line message naming the file.
 """
 
-from shapes.data._build import DEFAULT_COPIES, MODES, build_dataset, sample_cloud
+from shapes.data._build import (
+    DEFAULT_COPIES,
+    MODES,
+    NORMAL_SOURCES,
+    NORMALS_K,
+    SCAN,
+    SURFACE,
+    build_dataset,
+    draw_cloud,
+    sample_cloud,
+)
 from shapes.data._catalog import Catalog, Instance, read_catalog
+from shapes.data._clean import CleanSettings, Cleaned, clean_points, neighbour_spacing
 from shapes.data._load import CloudDataset, CloudSplit, collate_clouds, load_split, read_meta
 from shapes.data._normals import estimate_normals
 from shapes.data._read import (
@@ -18,6 +29,17 @@ from shapes.data._read import (
     read_mesh,
     read_scan,
 )
+from shapes.data._scanfile import (
+    MAX_FILE_BYTES,
+    MAX_FILE_POINTS,
+    READ_POINTS,
+    READ_SUFFIXES,
+    UNITS,
+    ScanFile,
+    check_spread,
+    orient_toward,
+    read_points,
+)
 from shapes.data._sample import farthest_point_subsample, normalise, sample_surface
 from shapes.data._scan import random_direction, ray_backend, scan_view
 from shapes.data._split import SPLITS, split_groups
@@ -25,6 +47,19 @@ from shapes.data._split import SPLITS, split_groups
 __all__ = [
     "read_mesh",
     "read_scan",
+    "read_points",
+    "ScanFile",
+    "check_spread",
+    "orient_toward",
+    "UNITS",
+    "READ_SUFFIXES",
+    "READ_POINTS",
+    "MAX_FILE_BYTES",
+    "MAX_FILE_POINTS",
+    "CleanSettings",
+    "Cleaned",
+    "clean_points",
+    "neighbour_spacing",
     "MESH_SUFFIXES",
     "SCAN_SUFFIXES",
     "MIN_SCAN_POINTS",
@@ -43,6 +78,11 @@ __all__ = [
     "split_groups",
     "build_dataset",
     "sample_cloud",
+    "draw_cloud",
+    "NORMAL_SOURCES",
+    "NORMALS_K",
+    "SCAN",
+    "SURFACE",
     "DEFAULT_COPIES",
     "MODES",
     "read_meta",

@@ -4,7 +4,9 @@ Layout of the output folder (written whole or not at all)::
 
     out_dir/
       train.npz  val.npz  test.npz   points (M, N, 3) float32, normals (M, N, 3) float32,
-                                     labels (M,) int64, instance (M,) int32, scale (M,) float32
+                                     labels (M,) int64, instance (M,) int32, scale (M,) float32,
+                                     kind (M,) int8 (0 full surface, 1 virtual scan),
+                                     visible (M,) float32 (share of the surface area seen; 1 for surfaces)
       meta.json                      classes, twins, handed, instances, sampler settings, ...
 """
 
@@ -24,19 +26,34 @@ import shapes
 from shapes._atomic import atomic_dir, write_json
 from shapes.errors import ConfigError, DataError
 from shapes.data._catalog import read_catalog
+from shapes.data._normals import estimate_normals
 from shapes.data._read import read_mesh
 from shapes.data._sample import farthest_point_subsample, normalise, sample_surface
 from shapes.data._scan import scan_view
 from shapes.data._split import SPLITS, split_groups
 
-__all__ = ["build_dataset", "sample_cloud", "DEFAULT_COPIES", "MODES", "META_FILE", "SHARD_KEYS"]
+__all__ = ["build_dataset", "sample_cloud", "draw_cloud", "DEFAULT_COPIES", "MODES", "NORMAL_SOURCES",
+           "NORMALS_K", "META_FILE", "SHARD_KEYS", "OPTIONAL_KEYS", "SURFACE", "SCAN"]
 
 # Copies per instance: training sees each part in several samplings; test has more than val
 # because its accuracy is the number reported.
 DEFAULT_COPIES = {"train": 8, "val": 2, "test": 4}
 MODES = ("surface", "scan", "mixed")
+# Where a virtual scan's normals come from: the faces of the mesh, or local PCA on the points
+# themselves, turned toward the (unknown) sensor, which is what a bare x y z scan file gives at
+# prediction time; training on them makes both alike. Full-surface clouds keep the mesh's
+# normals either way: a mesh file has faces, and on thin walls sampled more coarsely than their
+# thickness no estimate finds the outside (see shapes.data._normals).
+NORMAL_SOURCES = ("mesh", "estimated")
+# Neighbours of the PCA normals. 16 spans about a tenth of a part's surface at 512-1024 points:
+# enough to average out scanner noise, small enough not to round off edges (Hoppe et al. 1992
+# use a small fixed neighbourhood for the same reason). # common practice
+NORMALS_K = 16
 META_FILE = "meta.json"
 SHARD_KEYS = ("points", "normals", "labels", "instance", "scale")
+# Keys added later; shards written before them load with the defaults below.
+OPTIONAL_KEYS = {"kind": (np.int8, 0), "visible": (np.float32, 1.0)}
+SURFACE, SCAN = 0, 1  # values of ``kind``
 _FORMAT = 1
 
 
@@ -46,7 +63,8 @@ def _check_int(value, name: str, low: int) -> int:
     return int(value)
 
 
-def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed) -> dict:
+def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals="mesh",
+                    normals_k=NORMALS_K) -> dict:
     points = _check_int(points, "points", 2)
     oversample = _check_int(oversample, "oversample", 1)
     seed = _check_int(seed, "seed", 0)
@@ -61,8 +79,13 @@ def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed
             raise ConfigError(f"{name} should be a finite number >= 0, got {value!r} instead.")
     if scan_fraction > 1:
         raise ConfigError(f"scan_fraction should be in [0, 1], got {scan_fraction!r} instead.")
+    if normals not in NORMAL_SOURCES:
+        raise ConfigError(f"normals should be one of {list(NORMAL_SOURCES)}, got {normals!r} instead.")
+    normals_k = _check_int(normals_k, "normals_k", 3)
+    if normals == "estimated" and normals_k >= points:
+        raise ConfigError(f"normals_k should be below points = {points}, got {normals_k} instead.")
     return dict(points=points, copies=copies, mode=mode, scan_fraction=float(scan_fraction),
-                oversample=oversample, noise=float(noise), seed=seed)
+                oversample=oversample, noise=float(noise), seed=seed, normals=normals, normals_k=normals_k)
 
 
 def _check_out_dir(out_dir: Path, root: Path) -> None:
@@ -88,24 +111,50 @@ def _scan_copies(n_copies: int, mode: str, scan_fraction: float) -> int:
     return math.floor(scan_fraction * n_copies + 0.5)  # half up: 1 copy at 0.5 is a scan
 
 
+def draw_cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, float, float]:
+    """One normalised cloud as the shards hold it, and the share of the surface it shows.
+
+    ``scan``: a single-view virtual scan with ``s["oversample"]`` times the points among its hits;
+    else that many area-weighted samples of the whole surface. Either way the cloud is then thinned
+    to ``s["points"]`` by farthest-point subsampling, as :func:`shapes.predict` thins a scan file,
+    and centred and scaled to unit RMS radius. ``s["noise"]`` (RMS radii) moves scan points along
+    the ray and surface points along the normal. With ``s["normals"] == "estimated"`` a scan's
+    normals are then estimated from its normalised points (local PCA over ``s["normals_k"]``
+    neighbours, turned toward one sensor direction), exactly as for a bare scan file at
+    prediction time; a full surface keeps the mesh's normals.
+
+    Returns
+    -------
+    points : (N, 3) float64, centroid 0, unit RMS radius
+    normals : (N, 3) float64 unit vectors
+    scale : float, RMS radius before normalising, in mesh units
+    visible : float, share of the surface area seen (1.0 for a full surface)
+    """
+    n = s["points"]
+    many = n * s["oversample"]
+    visible = 1.0
+    if scan:
+        pts, nrm = scan_view(mesh, many, seed=gen, noise=s["noise"])
+    else:
+        pts, nrm = sample_surface(mesh, many, seed=gen)
+    keep = farthest_point_subsample(pts, n, seed=gen)
+    pts, nrm = pts[keep], nrm[keep]
+    if s["noise"] > 0 and not scan:
+        rms = math.sqrt(np.mean(np.sum((pts - pts.mean(axis=0)) ** 2, axis=1)))
+        pts = pts + gen.normal(0.0, s["noise"] * rms, size=(n, 1)) * nrm
+    pts, _, scale = normalise(pts)
+    if scan and s.get("normals", "mesh") == "estimated":
+        nrm, _ = estimate_normals(pts, k=int(s.get("normals_k", NORMALS_K)), orientation="single-view")
+    return pts, nrm, scale, visible
+
+
 def sample_cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, float]:
     """One normalised cloud as the shards hold it: points (N, 3), normals (N, 3), scale in mesh units.
 
-    ``scan``: a single-view virtual scan, else the whole surface (``s["oversample"]`` times the
-    points, then farthest-point thinned); ``s["noise"]`` in RMS radii along the normals. Used for
-    the shards and by ``shapes predict``, so a new mesh is sampled exactly like the training data.
+    See :func:`draw_cloud`; used for the shards and by ``shapes predict``, so a new mesh is sampled
+    exactly like the training data.
     """
-    n = s["points"]
-    if scan:
-        pts, nrm = scan_view(mesh, n, seed=gen, noise=s["noise"])
-    else:
-        pts, nrm = sample_surface(mesh, n * s["oversample"], seed=gen)
-        keep = farthest_point_subsample(pts, n, seed=gen)
-        pts, nrm = pts[keep], nrm[keep]
-        if s["noise"] > 0:
-            rms = math.sqrt(np.mean(np.sum((pts - pts.mean(axis=0)) ** 2, axis=1)))
-            pts = pts + gen.normal(0.0, s["noise"] * rms, size=(n, 1)) * nrm
-    pts, _, scale = normalise(pts)
+    pts, nrm, scale, _ = draw_cloud(mesh, scan, s, gen)
     return pts, nrm, scale
 
 
@@ -122,10 +171,12 @@ def build_dataset(
     *,
     points: int = 1024,
     copies: dict[str, int] | None = None,
-    mode: str = "surface",
+    mode: str = "mixed",
     scan_fraction: float = 0.5,
     oversample: int = 2,
     noise: float = 0.0,
+    normals: str = "mesh",
+    normals_k: int = NORMALS_K,
     split_fractions=(0.6, 0.2, 0.2),
     seed: int = 0,
     progress: bool = False,
@@ -151,6 +202,7 @@ def build_dataset(
     copies : dict split -> int
         Clouds per instance and split (default ``{"train": 8, "val": 2, "test": 4}``).
     mode : {"surface", "scan", "mixed"}
+        Default ``"mixed"``: a model that saw both names full meshes and single-view scans.
     scan_fraction : float
         Share of scan copies in ``"mixed"`` mode (default 0.5: half complete, half partial).
     oversample : int
@@ -159,6 +211,10 @@ def build_dataset(
     noise : float
         Gaussian noise as a fraction of each cloud's RMS radius, along the ray for scans
         and along the surface normal for surface samples (default 0: clean CAD).
+    normals : {"mesh", "estimated"}
+        The clouds' normals: the faces hit, or estimated from the points as for a bare scan file.
+    normals_k : int
+        Neighbours of the estimated normals.
     split_fractions : (3,) float
         Train/val/test shares of each class's groups.
     seed : int
@@ -176,14 +232,14 @@ def build_dataset(
     DataError, MeshError, ConfigError
         Bad catalog, a bad mesh (nothing is written: no out_dir, no temp folder), bad option.
     """
-    s = _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed)
+    s = _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals, normals_k)
     catalog = read_catalog(catalog_dir)
     out_dir = Path(out_dir).expanduser().resolve()
     _check_out_dir(out_dir, catalog.root)
     split_of = split_groups(catalog, split_fractions, seed=np.random.SeedSequence([s["seed"], 0x5117]))
     label = {c: k for k, c in enumerate(catalog.classes)}
 
-    shards = {sp: {key: [] for key in SHARD_KEYS} for sp in SPLITS}
+    shards = {sp: {key: [] for key in SHARD_KEYS + tuple(OPTIONAL_KEYS)} for sp in SPLITS}
     bar = tqdm(catalog.instances, desc="sampling", unit="mesh",
                disable=not (progress and sys.stderr.isatty()))
     for i, inst in enumerate(bar):
@@ -193,8 +249,10 @@ def build_dataset(
         n_scans = _scan_copies(n_copies, s["mode"], s["scan_fraction"])
         for k in range(n_copies):
             gen = np.random.default_rng(np.random.SeedSequence([s["seed"], i, k]))
-            pts, nrm, scale = sample_cloud(mesh, k < n_scans, s, gen)
+            pts, nrm, scale, visible = draw_cloud(mesh, k < n_scans, s, gen)
             out = shards[split]
+            out["kind"].append(SCAN if k < n_scans else SURFACE)
+            out["visible"].append(visible)
             out["points"].append(pts.astype(np.float32))
             out["normals"].append(nrm.astype(np.float32))
             out["labels"].append(label[inst.cls])
@@ -203,7 +261,8 @@ def build_dataset(
     bar.close()
 
     n = s["points"]
-    dtypes = {"labels": np.int64, "instance": np.int32, "scale": np.float32}
+    dtypes = {"labels": np.int64, "instance": np.int32, "scale": np.float32,
+              **{key: dt for key, (dt, _) in OPTIONAL_KEYS.items()}}
     arrays = {}
     for sp in SPLITS:
         out = shards[sp]
@@ -230,7 +289,11 @@ def build_dataset(
             "oversample": s["oversample"],
             "noise": s["noise"],
             "noise_units": "fraction of the cloud's RMS radius; along the ray (scan) or the surface normal (surface)",
-            "scan_resolution": "auto: max(32, ceil(sqrt(8 * points))) rays per side",
+            "scan_resolution": "auto: max(32, ceil(sqrt(8 * points * oversample))) rays per side",
+            "thinning": "farthest-point subsampling of points * oversample surface samples or scan hits",
+            "normals": {"source": s["normals"], "k": s["normals_k"],
+                        **({"applies_to": "virtual scans (full surfaces keep the mesh's)", "method": "pca",
+                            "orientation": "single-view"} if s["normals"] == "estimated" else {})},
             "split_fractions": [float(f) for f in split_fractions],
             "normalise": "centroid to origin, unit RMS radius; scale (catalog units) stored per cloud",
         },

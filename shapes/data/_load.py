@@ -13,7 +13,7 @@ import torch
 from torch.utils.data import Dataset
 
 from shapes.errors import DataError, InputError
-from shapes.data._build import META_FILE, SHARD_KEYS
+from shapes.data._build import META_FILE, OPTIONAL_KEYS, SHARD_KEYS
 from shapes.data._split import SPLITS
 
 __all__ = ["read_meta", "load_split", "CloudSplit", "CloudDataset", "collate_clouds"]
@@ -62,6 +62,10 @@ class CloudSplit:
         RMS radius of each cloud before normalising, in catalog units.
     meta : dict
     split : str
+    kind : (M,) int8
+        0 for a full-surface cloud, 1 for a virtual scan (all 0 for shards written before the key).
+    visible : (M,) float32
+        Share of the part's surface area the cloud shows (1 for a full surface).
     """
 
     points: np.ndarray
@@ -71,6 +75,14 @@ class CloudSplit:
     scale: np.ndarray
     meta: dict
     split: str
+    kind: np.ndarray | None = None
+    visible: np.ndarray | None = None
+
+    def __post_init__(self):
+        m = len(self.labels)
+        for key, (dtype, default) in OPTIONAL_KEYS.items():
+            if getattr(self, key) is None:
+                setattr(self, key, np.full(m, default, dtype=dtype))
 
     @property
     def classes(self) -> list[str]:
@@ -100,6 +112,7 @@ def load_split(out_dir: str | os.PathLike, split: str) -> CloudSplit:
             if missing:
                 raise DataError(f"dataset {out_dir}: {path.name} lacks arrays {missing}.")
             arrays = {k: shard[k] for k in SHARD_KEYS}
+            extra = {k: shard[k] for k in OPTIONAL_KEYS if k in shard.files}
     except DataError:
         raise
     except Exception as exc:
@@ -112,7 +125,10 @@ def load_split(out_dir: str | os.PathLike, split: str) -> CloudSplit:
         raise DataError(f"dataset {out_dir}: {path.name} has inconsistent array shapes {shapes}.")
     if m and not (0 <= arrays["labels"].min() and arrays["labels"].max() < len(meta["classes"])):
         raise DataError(f"dataset {out_dir}: {path.name} has labels outside 0..{len(meta['classes']) - 1}.")
-    return CloudSplit(meta=meta, split=split, **arrays)
+    if any(v.shape != (m,) for v in extra.values()):
+        raise DataError(f"dataset {out_dir}: {path.name} has inconsistent array shapes "
+                        f"{ {k: v.shape for k, v in extra.items()} } for {m} clouds.")
+    return CloudSplit(meta=meta, split=split, **arrays, **extra)
 
 
 class CloudDataset(Dataset):
