@@ -48,13 +48,13 @@ def test_directions_on_clean_surfaces_are_within_two_degrees():
     # measured here: sphere (10k points) median 0.48 deg, 99th percentile 1.55; cylinder (12k,
     # away from the cap edges) 0.47 and 1.71; plane 0 (to round-off)
     p, truth = sphere(10000)
-    err = angle_deg(estimate_normals(p)[0], truth)
+    err = angle_deg(estimate_normals(p, orientation="propagate")[0], truth)
     assert np.median(err) < 1.0 and np.percentile(err, 99) < 2.0
     p, truth, away = cylinder(12000)
-    err = angle_deg(estimate_normals(p)[0], truth)[away]
+    err = angle_deg(estimate_normals(p, orientation="propagate")[0], truth)[away]
     assert np.median(err) < 1.0 and np.percentile(err, 99) < 2.0
     p, truth = plane()
-    err = angle_deg(estimate_normals(p)[0], truth)
+    err = angle_deg(estimate_normals(p, orientation="propagate")[0], truth)
     assert err.max() < 1e-6  # exactly planar: the smallest eigenvalue is 0
 
 
@@ -63,7 +63,7 @@ def test_directions_with_small_noise_stay_close():
     noise = 0.002 * RADIUS
     gen = np.random.default_rng(1)
     for p, truth, keep in ((*sphere(10000), slice(None)), cylinder(12000), (*plane(), slice(None))):
-        err = angle_deg(estimate_normals(p + gen.normal(scale=noise, size=p.shape))[0], truth)[keep]
+        err = angle_deg(estimate_normals(p + gen.normal(scale=noise, size=p.shape), orientation="propagate")[0], truth)[keep]
         assert np.median(err) < 1.5 and np.percentile(err, 99) < 4.0
 
 
@@ -75,21 +75,21 @@ def test_mst_orientation_points_outward_on_closed_surfaces():
     # method: signs propagated over the MST of the kNN graph with weight 1 - |n_i . n_j|
     # (Hoppe et al. 1992, "Surface reconstruction from unorganized points", SIGGRAPH)
     p, truth = sphere()
-    normals, info = estimate_normals(p)
+    normals, info = estimate_normals(p, orientation="propagate")
     assert info == {"method": "pca", "k": 16, "orientation": "mst-propagation", "components": 1}
     assert outward_share(normals, truth) >= 0.99
     p, truth, _ = cylinder()
-    assert outward_share(estimate_normals(p)[0], truth) >= 0.99
+    assert outward_share(estimate_normals(p, orientation="propagate")[0], truth) >= 0.99
     box = trimesh.creation.box(extents=(1.0, 2.0, 3.0))
     p, truth = sample_surface(box, 6000, seed=2)  # the face normals, outward for a watertight box
-    assert outward_share(estimate_normals(p)[0], truth) >= 0.99
+    assert outward_share(estimate_normals(p, orientation="propagate")[0], truth) >= 0.99
 
 
 def test_each_connected_component_is_turned_outward_on_its_own():
     a, truth_a = sphere(2000, seed=3)
     b, truth_b = sphere(2000, seed=4)
     p = np.vstack([a - [5.0, 0, 0], b + [5.0, 0, 0]])
-    normals, info = estimate_normals(p)
+    normals, info = estimate_normals(p, orientation="propagate")
     assert info["components"] == 2
     # far apart, each ball's outward side faces away from the pair's centroid on most points
     assert outward_share(normals, np.vstack([truth_a, truth_b])) >= 0.99
@@ -104,12 +104,12 @@ def test_a_viewpoint_turns_every_normal_toward_the_sensor():
 
 def test_normals_turn_with_the_points_and_reflect_with_them():
     p, _, _ = cylinder(3000)
-    base, _ = estimate_normals(p)
+    base, _ = estimate_normals(p, orientation="propagate")
     rot = Rotation.random(random_state=7).as_matrix()
-    turned, _ = estimate_normals(p @ rot.T + [3.0, -2.0, 10.0])
+    turned, _ = estimate_normals(p @ rot.T + [3.0, -2.0, 10.0], orientation="propagate")
     np.testing.assert_allclose(turned, base @ rot.T, atol=1e-6)  # n(R p + t) = R n(p)
     flip = np.diag([-1.0, 1.0, 1.0])  # a mirror image: x -> -x
-    mirrored, _ = estimate_normals(p @ flip)
+    mirrored, _ = estimate_normals(p @ flip, orientation="propagate")
     np.testing.assert_allclose(mirrored, base @ flip, atol=1e-6)
     np.testing.assert_allclose(np.linalg.norm(base, axis=1), 1.0, atol=1e-12)
 

@@ -121,7 +121,7 @@ def _single_view(points: np.ndarray, normals: np.ndarray, neighbours: np.ndarray
     return oriented, view
 
 
-def estimate_normals(points, k: int = 16, viewpoint=None, orientation: str = "propagate") -> tuple[np.ndarray, dict]:
+def estimate_normals(points, k: int = 16, viewpoint=None, orientation: str = "single-view") -> tuple[np.ndarray, dict]:
     """Unit surface normals of a bare point cloud by local PCA, consistently oriented.
 
     Parameters
@@ -136,8 +136,9 @@ def estimate_normals(points, k: int = 16, viewpoint=None, orientation: str = "pr
         centroid turned outward, and each connected component is flipped if most of its normals
         point toward the centroid (``orientation="propagate"``), or all turned toward one estimated
         sensor direction (``orientation="single-view"``, for a single-view scan; see the module).
-    orientation : {"propagate", "single-view"}
-        How signs are found when there is no ``viewpoint``.
+    orientation : {"single-view", "propagate"}
+        How signs are found when there is no ``viewpoint``. The default suits the commonest bare
+        point file, one view of a scanner; ``"propagate"`` suits a cloud merged from several views.
 
     Returns
     -------
