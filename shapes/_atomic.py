@@ -1,17 +1,36 @@
 """Write files and folders under a temporary name, then rename, so an interrupted run leaves
-nothing half-written behind."""
+nothing half-written behind.
+
+The temporary file and folder are made private (0600, 0700) by :mod:`tempfile`; before the rename
+they get the modes an ordinary ``open``/``mkdir`` would give (0666/0777 less the umask: 0644 and 0755
+under the usual umask 022), so others on the machine can read results as they could any file.
+JSON is written as the standard defines it: no NaN or Infinity (a non-finite number becomes null).
+"""
 
 from __future__ import annotations
 
 import contextlib
 import json
+import math
 import os
 import shutil
 import tempfile
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["atomic_path", "atomic_dir", "write_json", "write_text"]
+__all__ = ["atomic_path", "atomic_dir", "write_json", "write_text", "finite_or_none"]
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)  # reading the umask means setting it; put it straight back
+    os.umask(mask)
+    return mask
+
+
+def _ordinary_mode(path: Path, folder: bool) -> None:
+    """Give ``path`` the mode a plain ``open``/``mkdir`` would have given it."""
+    if path.exists() and not path.is_symlink():
+        os.chmod(path, (0o777 if folder else 0o666) & ~_umask())
 
 
 @contextlib.contextmanager
@@ -28,6 +47,7 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     tmp = Path(tmp)
     try:
         yield tmp
+        _ordinary_mode(tmp, folder=False)
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -42,6 +62,7 @@ def atomic_dir(path: str | os.PathLike) -> Iterator[Path]:
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
     try:
         yield tmp
+        _ordinary_mode(tmp, folder=True)
         if path.exists():
             old = path.with_name(f".{path.name}.old")
             shutil.rmtree(old, ignore_errors=True)
@@ -61,5 +82,20 @@ def write_text(path: str | os.PathLike, text: str) -> Path:
     return Path(path)
 
 
+def finite_or_none(obj):
+    """``obj`` with every non-finite float (NaN, ±inf) replaced by None, in nested dicts, lists, tuples.
+
+    A metric that is undefined (a mean over nothing) is null in JSON, never the non-standard NaN.
+    """
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: finite_or_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [finite_or_none(v) for v in obj]
+    return obj
+
+
 def write_json(path: str | os.PathLike, obj) -> Path:
-    return write_text(path, json.dumps(obj, indent=2, sort_keys=False) + "\n")
+    """Standard JSON (``allow_nan=False``): non-finite numbers are written as null."""
+    return write_text(path, json.dumps(finite_or_none(obj), indent=2, sort_keys=False, allow_nan=False) + "\n")

@@ -6,10 +6,12 @@ Hydra lives here and in ``shapes/conf/``; the jobs below it take plain arguments
 from __future__ import annotations
 
 import os
+import signal
 import sys
+import threading
 from pathlib import Path
 
-from shapes.errors import ConfigError, ShapesError
+from shapes.errors import ConfigError, Interrupted, ShapesError
 
 __all__ = ["main", "VERBS", "CONF_DIR"]
 
@@ -65,8 +67,13 @@ def _compose(overrides: list[str]):
         return compose(config_name="config", overrides=overrides)
 
 
-def _check_overrides(overrides: list[str], multirun: bool) -> None:
-    """Compose the config once per swept value so a bad option fails before any work starts."""
+def _check_overrides(overrides: list[str], multirun: bool, verb: str = "") -> None:
+    """Compose the config once per swept value and check the options ``verb`` reads (types and
+    ranges, :mod:`shapes._options`), so a bad option fails before any work starts."""
+    from omegaconf import OmegaConf
+
+    from shapes._options import check_options
+
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
     try:
@@ -87,12 +94,16 @@ def _check_overrides(overrides: list[str], multirun: bool) -> None:
         if key.startswith("hydra"):
             continue
         variants = [prev + [f"{key}={v}"] for prev in variants for v in values]
+    defaults = None
     for variant in variants[:64]:
         try:
-            _compose(variant)
+            cfg = OmegaConf.to_container(_compose(variant), resolve=True)
         except Exception as exc:
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
             raise ConfigError(f"bad option in {variant}: {first}") from exc
+        if verb:
+            defaults = defaults or OmegaConf.to_container(_compose([]), resolve=True)
+            check_options(verb, cfg, defaults)
 
 
 def _verb_help(verb: str, overrides: list[str]) -> str:
@@ -182,13 +193,17 @@ def _run_train(cfg) -> None:
     from omegaconf import OmegaConf
 
     from shapes._atomic import write_text
-    from shapes.train import TrainSettings, train_classifier
+    from shapes._runtime import set_threads
+    from shapes.seeding import seed_everything
+    from shapes.train import TrainSettings, check_settings, train_classifier
 
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
+        settings = check_settings(TrainSettings(**_plain(cfg.train), seed=cfg.seed,
+                                                extra={"config": OmegaConf.to_container(cfg, resolve=True)}))
+        set_threads(settings.threads)
+        seed_everything(settings.seed)  # before the backbone is built: building it draws its weights
         backbone = _build_backbone(cfg.backbone)
-        settings = TrainSettings(**_plain(cfg.train), seed=cfg.seed,
-                                 extra={"config": OmegaConf.to_container(cfg, resolve=True)})
         ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
     except BaseException:
         if run_dir.is_dir() and not any(run_dir.iterdir()):
@@ -201,11 +216,12 @@ def _run_train(cfg) -> None:
 
 
 def _run_eval(cfg) -> None:
+    from shapes._options import eval_poses
     from shapes.evaluate import evaluate_run
     from shapes.report import run_report
 
     e = cfg.eval
-    metrics = evaluate_run(_latest_run(cfg.run), None, poses=tuple(e.poses), repeats=e.repeats,
+    metrics = evaluate_run(_latest_run(cfg.run), None, poses=tuple(eval_poses(_plain(e.poses))), repeats=e.repeats,
                            seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
     report = run_report(metrics, Path(metrics["checkpoint"]).parent)
     for regime, m in metrics["regimes"].items():
@@ -251,6 +267,19 @@ def _run_predict(cfg) -> None:
         raise SystemExit(1)
 
 
+def _interrupted(exc: KeyboardInterrupt) -> int:
+    """One line for Ctrl-C or SIGTERM; the status a shell expects (128 + the signal's number)."""
+    text = str(exc) if isinstance(exc, Interrupted) and str(exc) != "interrupted" else (
+        f"{_verb or 'shapes'} interrupted by {'SIGTERM' if getattr(exc, 'status', 130) == 143 else 'Ctrl-C'}; "
+        "files are renamed into place only when complete, so nothing half-written is left.")
+    _error(text)
+    return getattr(exc, "status", 130)
+
+
+def _on_sigterm(signum, frame):
+    raise Interrupted("interrupted", 128 + signal.SIGTERM)
+
+
 def _task(cfg) -> None:
     try:
         globals()[f"_run_{_verb}"](cfg)
@@ -258,6 +287,10 @@ def _task(cfg) -> None:
         if os.environ.get("SHAPES_TRACEBACK"):
             raise
         raise SystemExit(_error(exc)) from None
+    except KeyboardInterrupt as exc:
+        if os.environ.get("SHAPES_TRACEBACK"):
+            raise
+        raise SystemExit(_interrupted(exc)) from None
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -281,10 +314,11 @@ def main(argv: list[str] | None = None) -> int:
         os.environ["SHAPES_TRACEBACK"] = "1"
         os.environ["HYDRA_FULL_ERROR"] = "1"
     try:
-        _check_overrides(overrides, multirun)
         if "-h" in flags or "--help" in flags:
+            _check_overrides(overrides, multirun)
             print(_verb_help(verb, overrides))
             return 0
+        _check_overrides(overrides, multirun, verb)
     except ShapesError as exc:
         if os.environ.get("SHAPES_TRACEBACK"):
             raise
@@ -298,10 +332,18 @@ def main(argv: list[str] | None = None) -> int:
     sys.argv = [f"shapes {verb}"] + (["-m"] if multirun else []) + overrides + [f"hydra.job.name={verb}"]
     if verb != "train":
         sys.argv.append("hydra.run.dir=.")  # only `train` makes a run folder of its own
+    in_main = threading.current_thread() is threading.main_thread()  # signals can be set only there
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if in_main else None
     try:
         task()
     except SystemExit as exc:
         return int(exc.code or 0)
+    except KeyboardInterrupt as exc:  # outside the job itself (Hydra starting up or finishing)
+        if os.environ.get("SHAPES_TRACEBACK"):
+            raise
+        return _interrupted(exc)
     finally:
         sys.argv = saved
+        if in_main:
+            signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
     return 0

@@ -14,6 +14,7 @@ from shapes.backbones import Backbone
 from shapes.data import build_dataset, read_meta
 from shapes.evaluate import evaluate_run
 from shapes.report import comparison_report, run_report
+from shapes.seeding import seed_everything
 from shapes.train import TrainSettings, train_classifier
 
 __all__ = ["run_demo"]
@@ -51,6 +52,7 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
         budget = minutes.get(name)
         limit = f"{budget:g} min (at most {epochs} epochs)" if budget else f"{epochs} epochs"
         print(f"[demo] training '{name}' for {limit} on {meta['counts']['train']} clouds", flush=True)
+        seed_everything(seed)  # before the backbone is built: building it draws its weights
         backbone = make()
         settings = TrainSettings(epochs=epochs, seed=seed, threads=threads, max_minutes=budget, mirror=mirror)
         train_classifier(backbone, data, out / name, settings)

@@ -4,7 +4,7 @@ Every message says what was expected and what was found, so the command line can
 single ``error: ...`` line. Internal invariants use ``assert``; only user-facing problems raise these.
 """
 
-__all__ = ["ShapesError", "InputError", "MeshError", "ConfigError", "DataError"]
+__all__ = ["ShapesError", "InputError", "MeshError", "ConfigError", "DataError", "TrainingError", "Interrupted"]
 
 
 class ShapesError(Exception):
@@ -25,3 +25,16 @@ class ConfigError(ShapesError, ValueError):
 
 class DataError(ShapesError):
     """A dataset, catalog or checkpoint folder is missing, inconsistent or too small."""
+
+
+class TrainingError(ShapesError):
+    """Training cannot go on: the loss or the weights became non-finite (too high a learning rate)."""
+
+
+class Interrupted(KeyboardInterrupt):
+    """A job stopped by Ctrl-C or SIGTERM; the message says what was kept. Not a ShapesError: the
+    user asked for it, and the command line exits with the signal's status, not 2."""
+
+    def __init__(self, message: str = "interrupted", status: int = 130):
+        super().__init__(message)
+        self.status = status

@@ -17,6 +17,7 @@ from __future__ import annotations
 import math
 import os
 import pickle
+import re
 from pathlib import Path
 
 import numpy as np
@@ -53,8 +54,8 @@ def find_checkpoint(run: str | os.PathLike) -> Path:
 def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") -> tuple[Classifier, dict]:
     """Rebuild the classifier from a checkpoint (``weights_only=True``); returns (model in eval mode, meta)."""
     path = find_checkpoint(run)
+    payload = _load_weights_only(path, device)
     try:
-        payload = torch.load(path, map_location=device, weights_only=True)
         meta = payload["meta"]
         backbone = build_backbone(meta["backbone"]["name"], **meta["backbone"]["options"])
         model = Classifier(backbone, len(meta["classes"]), **meta["head"])
@@ -74,6 +75,40 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
             "`shapes train`."
         )
     return model.to(device).eval(), meta
+
+
+def _load_weights_only(path: Path, device) -> dict:
+    """``torch.load(path, weights_only=True)``; whatever goes wrong becomes one DataError line.
+
+    A file whose unpickling would build anything but tensors and plain data is refused unread,
+    and the message never suggests turning that safety off.
+    """
+    try:
+        payload = torch.load(path, map_location=device, weights_only=True)
+    except pickle.UnpicklingError as exc:
+        found = re.search(r"Unsupported global: (GLOBAL \S+)", str(exc))
+        if found or "Weights only load failed" in str(exc):
+            what = f" ({found.group(1)})" if found else ""
+            raise DataError(f"checkpoint '{path}' holds objects other than weights and plain metadata{what}; it was "
+                            "refused unread. Expected a checkpoint written by `shapes train`.") from None
+        raise DataError(f"checkpoint '{path}' is not a torch checkpoint ({_first_line(exc)}); expected a "
+                        "checkpoint written by `shapes train`.") from None
+    except OSError as exc:
+        raise DataError(f"checkpoint '{path}' cannot be read: {exc.strerror or _first_line(exc)}.") from None
+    except (RuntimeError, EOFError, KeyError, ValueError, TypeError, AttributeError, IndexError) as exc:
+        raise DataError(f"checkpoint '{path}' is truncated or corrupted, or not a torch checkpoint "
+                        f"({type(exc).__name__}: {_first_line(exc)}); expected a complete checkpoint written by "
+                        "`shapes train`.") from None
+    if not isinstance(payload, dict):
+        raise DataError(f"checkpoint '{path}' holds a {type(payload).__name__}; expected the dict of weights and "
+                        "metadata written by `shapes train`.")
+    return payload
+
+
+def _first_line(exc: BaseException) -> str:
+    """The first sentence of an exception's message, on one line."""
+    text = " ".join(str(exc).split())
+    return (text.split(". ")[0] if text else type(exc).__name__)[:200]
 
 
 @torch.no_grad()

@@ -31,8 +31,19 @@ def torch_generator(seed: int | None = None, device: str | torch.device = "cpu")
     return gen
 
 
-def seed_everything(seed: int) -> None:
-    """Seed Python, numpy's legacy global state and torch (for weight initialisation)."""
+def seed_everything(seed: int, deterministic: bool = True) -> None:
+    """Seed Python, numpy's legacy global state and torch (for weight initialisation).
+
+    Call it before anything random is drawn: before a backbone is built, since building one draws
+    its initial weights. ``deterministic`` also asks torch for deterministic kernels
+    (``torch.use_deterministic_algorithms(True, warn_only=True)``: an op without a deterministic
+    version warns rather than fails), so the same seed and thread count give the same weights.
+    """
     random.seed(seed)
     np.random.seed(seed % (2**32))
     torch.manual_seed(seed)
+    if deterministic and hasattr(torch, "use_deterministic_algorithms"):
+        try:
+            torch.use_deterministic_algorithms(True, warn_only=True)
+        except TypeError:  # a torch without warn_only: leave the default rather than fail on an op
+            pass

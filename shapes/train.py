@@ -17,15 +17,17 @@ import numpy as np
 import torch
 from torch import nn
 
+from shapes import _checks as check
 from shapes._atomic import atomic_path, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
-from shapes.errors import ConfigError
+from shapes.errors import ConfigError, Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
-__all__ = ["TrainSettings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins", "CHECKPOINT"]
+__all__ = ["TrainSettings", "check_settings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins",
+           "CHECKPOINT"]
 
 CHECKPOINT = "checkpoint.pt"
 
@@ -52,6 +54,31 @@ class TrainSettings:
     max_minutes: float | None = None  # a wall-time budget: the learning rate anneals to 0 by then and
     # training stops there, keeping the best checkpoint (epochs is then an upper bound)
     extra: dict = field(default_factory=dict)  # free-form metadata stored in the checkpoint (e.g. resolved config)
+
+
+def check_settings(s: TrainSettings) -> TrainSettings:
+    """Type- and range-check every option before any work; each failure names ``train.<option>``."""
+    check.integer("train.epochs", s.epochs, low=1)
+    check.integer("train.batch_size", s.batch_size, low=1)
+    check.number("train.lr", s.lr, low=0, low_open=True)
+    check.number("train.weight_decay", s.weight_decay, low=0)
+    check.number("train.warmup", s.warmup, low=0, high=1, high_open=True)
+    check_regime(s.poses, TRAIN_REGIMES, "train.poses")
+    check.number("train.jitter", s.jitter, low=0)
+    check.number("train.mirror", s.mirror, low=0, high=1)
+    check.integer("train.head_hidden", s.head_hidden, low=1)
+    check.number("train.dropout", s.dropout, low=0, high=1, high_open=True)
+    check.integer("seed", s.seed, low=0)
+    check.optional(check.integer, "train.threads", s.threads, low=1)
+    check.choice("train.device", s.device, ("cpu", "cuda", "auto"))
+    check.optional(check.number, "train.max_minutes", s.max_minutes, low=0, low_open=True)
+    if not isinstance(s.extra, dict):
+        check.fail("extra", "a dict of metadata", repr(s.extra))
+    return s
+
+
+def _finite_weights(model: nn.Module) -> bool:
+    return all(bool(torch.isfinite(p).all()) for p in model.parameters())
 
 
 def lr_factor(progress: float, warmup: float) -> float:
@@ -119,14 +146,9 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     Returns the checkpoint path. Files written: ``checkpoint.pt`` (best validation accuracy),
     ``train_history.json`` (one row per epoch). Both are renamed into place when complete.
     """
-    s = settings or TrainSettings()
-    check_regime(s.poses, TRAIN_REGIMES, "train.poses")
-    if not 0.0 <= s.mirror <= 1.0:
-        raise ConfigError(f"train.mirror should be a share between 0 and 1, got {s.mirror}.")
-    if s.epochs < 1 or s.batch_size < 1:
-        raise ConfigError(f"train.epochs and train.batch_size must be >= 1, got {s.epochs} and {s.batch_size}.")
+    s = check_settings(settings or TrainSettings())
     set_threads(s.threads)
-    seed_everything(s.seed)
+    seed_everything(s.seed)  # the head's weights; the caller seeds before building the backbone
     device = choose_device(s.device)
     rank, world = _distributed()
     run_dir = Path(run_dir)
@@ -166,63 +188,86 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     }
     history, best, started, step, out_of_time = [], (-1.0, -math.inf), time.perf_counter(), 0, False
     ckpt = run_dir / CHECKPOINT
-    for epoch in range(1, s.epochs + 1):
-        net.train()
-        order = torch.randperm(len(x_train), generator=gen)
-        # every rank takes the same permutation (same seed) and an equal share, so DDP's
-        # gradient all-reduce sees the same number of steps on each rank
-        order = order[: len(order) // world * world][rank::world].to(device)
-        losses, t0 = [], time.perf_counter()
-        for start in progress(range(0, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
-            elapsed = time.perf_counter() - started
-            if world > 1:  # every rank must take the same number of steps: rank 0's clock decides
-                flag = torch.tensor([float(elapsed)], device=device)
-                torch.distributed.broadcast(flag, 0)
-                elapsed = float(flag)
-            progress_done = min(max(step / total, elapsed / budget), 1.0)
-            if progress_done >= 1.0 and step > 0:  # at least one step, so there is a checkpoint
-                out_of_time = True
+    epoch, saved = 0, None  # the epoch under way, the epoch of the checkpoint on disk
+
+    def kept() -> str:
+        return (f"the best checkpoint so far (epoch {saved}) is kept at {ckpt}" if saved
+                else "no checkpoint was written")
+
+    def diverged(what: str) -> TrainingError:
+        return TrainingError(f"training diverged in epoch {epoch}, step {step + 1}: {what} "
+                             f"(train.lr={s.lr:g}; expected a finite loss, lower train.lr); {kept()}.")
+
+    try:
+        for epoch in range(1, s.epochs + 1):
+            net.train()
+            order = torch.randperm(len(x_train), generator=gen)
+            # every rank takes the same permutation (same seed) and an equal share, so DDP's
+            # gradient all-reduce sees the same number of steps on each rank
+            order = order[: len(order) // world * world][rank::world].to(device)
+            losses, t0 = [], time.perf_counter()
+            for start in progress(range(0, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
+                elapsed = time.perf_counter() - started
+                if world > 1:  # every rank must take the same number of steps: rank 0's clock decides
+                    flag = torch.tensor([float(elapsed)], device=device)
+                    torch.distributed.broadcast(flag, 0)
+                    elapsed = float(flag)
+                progress_done = min(max(step / total, elapsed / budget), 1.0)
+                if progress_done >= 1.0 and step > 0:  # at least one step, so there is a checkpoint
+                    out_of_time = True
+                    break
+                for group in opt.param_groups:
+                    group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
+                idx = order[start:start + s.batch_size]
+                rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
+                x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
+                n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
+                if s.mirror > 0:
+                    chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
+                    n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
+                    x, y = reflect_to_twins(x, y, twin_of, chosen)
+                if s.jitter > 0:
+                    x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
+                loss = loss_fn(net(x, None, n), y)
+                if not bool(torch.isfinite(loss.detach())):  # every rank sees its own; DDP keeps weights equal
+                    raise diverged(f"the loss is {float(loss.detach())}")
+                opt.zero_grad(set_to_none=True)
+                loss.backward()
+                nn.utils.clip_grad_norm_(model.parameters(), 5.0)
+                opt.step()
+                step += 1
+                losses.append(float(loss.detach()))
+            if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
                 break
-            for group in opt.param_groups:
-                group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
-            idx = order[start:start + s.batch_size]
-            rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
-            x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
-            n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
-            if s.mirror > 0:
-                chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
-                n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
-                x, y = reflect_to_twins(x, y, twin_of, chosen)
-            if s.jitter > 0:
-                x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
-            loss = loss_fn(net(x, None, n), y)
-            opt.zero_grad(set_to_none=True)
-            loss.backward()
-            nn.utils.clip_grad_norm_(model.parameters(), 5.0)
-            opt.step()
-            step += 1
-            losses.append(float(loss.detach()))
-        if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
-            break
-        val_acc, val_loss = _validate(model, x_val, n_val, y_val, s.poses, seed=s.seed, batch_size=4 * s.batch_size)
-        row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
-               "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
-        history.append(row)
-        if rank == 0:
-            print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f} (loss {val_loss:.3f})  "
-                  f"({row['seconds']:.1f} s)", flush=True)
-            # the validation split is small: among equal accuracies the lower loss is the surer model
-            if (val_acc, -val_loss) > best:
-                best = (val_acc, -val_loss)
-                save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
-                                              "val_loss": val_loss})
-            write_json(run_dir / "train_history.json", {"history": history, "best_val_accuracy": best[0],
-                                                        "wall_seconds": time.perf_counter() - started})
-        if out_of_time:
+            if not _finite_weights(model):  # the last step of the epoch overflowed: never save it
+                raise diverged("the weights are no longer finite")
+            val_acc, val_loss = _validate(model, x_val, n_val, y_val, s.poses, seed=s.seed,
+                                          batch_size=4 * s.batch_size)
+            if not math.isfinite(val_loss):
+                raise diverged(f"the validation loss is {val_loss}")
+            row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
+                   "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
+            history.append(row)
             if rank == 0:
-                print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
-                      "(the learning rate had annealed to 0 by then)", flush=True)
-            break
+                print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f} (loss {val_loss:.3f})  "
+                      f"({row['seconds']:.1f} s)", flush=True)
+                # the validation split is small: among equal accuracies the lower loss is the surer model
+                if (val_acc, -val_loss) > best:
+                    best = (val_acc, -val_loss)
+                    save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
+                                                  "val_loss": val_loss})
+                    saved = epoch
+                write_json(run_dir / "train_history.json", {"history": history, "best_val_accuracy": best[0],
+                                                            "wall_seconds": time.perf_counter() - started})
+            if out_of_time:
+                if rank == 0:
+                    print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
+                          "(the learning rate had annealed to 0 by then)", flush=True)
+                break
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM turned into Interrupted by the command line
+        status = getattr(exc, "status", 130)
+        how = "SIGTERM" if status == 143 else "Ctrl-C"
+        raise Interrupted(f"training interrupted by {how} in epoch {epoch}; {kept()}.", status) from None
     if world > 1:
         torch.distributed.barrier()
     return ckpt
