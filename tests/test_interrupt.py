@@ -1,0 +1,53 @@
+"""Ctrl-C or SIGTERM during training: one line saying what was kept, the shell's status, no traceback."""
+
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+
+from shapes.cli import main
+
+REPO = Path(__file__).resolve().parent.parent
+DEMO = REPO / "demo_meshes"
+
+
+@pytest.fixture(scope="module")
+def tiny_data(tmp_path_factory):
+    root = tmp_path_factory.mktemp("interrupt")
+    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64", "sample.mode=surface",
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+    return root / "data"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("signum,status,name", [(signal.SIGINT, 130, "Ctrl-C"), (signal.SIGTERM, 143, "SIGTERM")])
+def test_a_signal_during_training_gives_one_line_and_keeps_the_checkpoint(signum, status, name, tiny_data, tmp_path):
+    # common practice: a shell reports a job ended by signal N with status 128 + N (SIGINT 2, SIGTERM 15)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "shapes", "train", f"data={tiny_data}", "backbone=distance", "backbone.hidden=8",
+         "backbone.k=4", "backbone.layers=1", "train.epochs=100000", "train.batch_size=32", "train.threads=1",
+         "hydra.run.dir=run"],
+        cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))  # as typed at a terminal
+    try:
+        seen = 0
+        for line in proc.stdout:  # epoch 2's line comes after epoch 1's checkpoint is on disk
+            seen += line.startswith("epoch")
+            if seen == 2:
+                break
+        proc.send_signal(signum)
+        _, err = proc.communicate(timeout=300)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    lines = [x for x in err.strip().splitlines() if x.strip()]
+    assert proc.returncode == status, err
+    assert len(lines) == 1 and lines[0].startswith(f"error: training interrupted by {name}"), lines
+    assert "is kept at" in lines[0] and "Traceback" not in err
+    payload = torch.load(tmp_path / "run" / "checkpoint.pt", weights_only=True)
+    assert payload["meta"]["epoch"] >= 1
+    assert not list((tmp_path / "run").glob(".*part*"))  # nothing half-written left behind
