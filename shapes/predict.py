@@ -17,27 +17,27 @@ is reported as unknown, with its nearest class.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import torch
-import trimesh
 
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
-from shapes.data import MESH_SUFFIXES, MIN_SCAN_POINTS, SCAN_SUFFIXES, load_split, read_mesh, read_scan
-from shapes.data import estimate_normals, farthest_point_subsample, normalise, sample_cloud
-from shapes.errors import ConfigError, DataError, InputError, MeshError
+from shapes.data import MIN_SCAN_POINTS, READ_SUFFIXES, UNITS, CleanSettings, check_spread, clean_points, load_split
+from shapes.data import estimate_normals, farthest_point_subsample, normalise, orient_toward, read_points, sample_cloud
+from shapes.errors import ConfigError, DataError, InputError, MeshError, ShapesError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
 from shapes.geometry import check_regime, random_poses
 from shapes.seeding import rng, torch_generator
 
-__all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "Cloud", "find_inputs", "read_input",
+__all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "NORMAL_MODES", "Cloud", "find_inputs",
+           "read_input", "normals_k",
            "pose_averaged", "known_scores", "calibrate", "predict_files", "format_table"]
 
-# every scan suffix the data readers take, plus .npz holding 'points' (N, 3) and optional 'normals'
-SUPPORTED = tuple(sorted(set(SCAN_SUFFIXES) | {".npz"}))
+SUPPORTED = READ_SUFFIXES  # every suffix shapes.data.read_points takes (meshes, E57, PLY, text, NPY, NPZ)
+NORMAL_MODES = ("auto", "file", "estimated")
 REGIMES = ("cad", "upright", "any")  # a mirror pose would change a handed part into its twin
 UNKNOWN = "unknown (not a known part)"
 HAND_NOTE = "hand not determinable by this backbone"
@@ -52,11 +52,15 @@ class Cloud:
     normals : (N, 3) float32 unit vectors (from the file or estimated), or None when the file has
         none and the backbone takes none
     source : how the cloud was made, for the report
+    notes : what the reader noted (units, thinning while reading, ignored columns)
+    cleanup : one dict per clean-up step run (``step``, ``removed``, ``why``)
     """
 
     points: np.ndarray
     normals: np.ndarray | None
     source: str
+    notes: list = field(default_factory=list)
+    cleanup: list = field(default_factory=list)
 
 
 def _check(value, name: str, ok: bool, expected: str):
@@ -74,73 +78,24 @@ def _check_options(poses, regime, accept, batch_size) -> None:
     _check(batch_size, "batch_size", isinstance(batch_size, int) and batch_size >= 1, "an integer >= 1")
 
 
-def find_inputs(path: str | os.PathLike) -> list[Path]:
-    """A file → [file]; a folder → its scan and mesh files, searched recursively, sorted.
+def find_inputs(path: str | os.PathLike, exclude: str | os.PathLike | None = None) -> list[Path]:
+    """A file → [file]; a folder → every file in it, searched recursively, sorted.
 
-    Hidden files and files of other suffixes in a folder are passed over; a named file of an
-    unsupported suffix is an error.
+    Hidden files and folders are passed over, and so is ``exclude`` (the results file). Files of an
+    unsupported suffix are listed too: reading them gives their own error row. A missing path or a
+    folder without any file is a usage error.
     """
     path = Path(path)
     if not path.exists():
         raise MeshError(f"input {path} not found; expected a scan or mesh file or a folder of them.")
     if path.is_file():
-        if path.suffix.lower() not in SUPPORTED:
-            raise MeshError(f"input {path} has unsupported suffix '{path.suffix or '(none)'}'; "
-                            f"supported: {', '.join(SUPPORTED)}.")
         return [path]
-    found = sorted(p for p in path.rglob("*") if p.is_file() and p.suffix.lower() in SUPPORTED
+    skip = Path(exclude).resolve() if exclude is not None else None
+    found = sorted(p for p in path.rglob("*") if p.is_file() and p.resolve() != skip
                    and not any(part.startswith(".") for part in p.relative_to(path).parts))
     if not found:
         raise MeshError(f"folder {path} holds no scan or mesh files; expected files ending in {', '.join(SUPPORTED)}.")
     return found
-
-
-def _read_npz(path: Path) -> tuple[np.ndarray, np.ndarray | None]:
-    try:
-        with np.load(path, allow_pickle=False) as arrays:
-            data = {k: arrays[k] for k in arrays.files}
-    except Exception as exc:
-        raise MeshError(f"scan file {path} could not be read as .npz: {str(exc)[:160]}") from exc
-    if "points" not in data:
-        raise MeshError(f"scan file {path} should hold an array 'points' (N, 3); found {sorted(data) or 'none'}.")
-    points, normals = data["points"], data.get("normals")
-    for name, array in (("points", points), ("normals", normals)):
-        if array is None:
-            continue
-        if array.ndim != 2 or array.shape[1] != 3 or not np.issubdtype(array.dtype, np.number):
-            raise MeshError(f"scan file {path}: '{name}' should be numbers of shape (N, 3), "
-                            f"got {array.dtype} of shape {array.shape} instead.")
-    if normals is not None and len(normals) != len(points):
-        raise MeshError(f"scan file {path}: 'normals' should have one row per point ({len(points)}), "
-                        f"got {len(normals)} instead.")
-    if not np.isfinite(points).all():
-        raise MeshError(f"scan file {path} has NaN or inf point coordinates; expected finite coordinates.")
-    return points.astype(np.float64), None if normals is None else normals.astype(np.float64)
-
-
-def _ply_faces_and_normals(path: Path) -> tuple[bool, np.ndarray | None]:
-    """Whether a PLY has faces, and its per-vertex normals (nx, ny, nz) when it is a bare cloud."""
-    try:
-        loaded = trimesh.load(str(path), file_type="ply", process=False)
-    except Exception:
-        return False, None  # read_scan parses it again and names the problem
-    if isinstance(loaded, trimesh.Trimesh) and len(loaded.faces) > 0:
-        return True, None
-    vertex = loaded.metadata.get("_ply_raw", {}).get("vertex", {}).get("data", {})
-    # ASCII PLY gives a dict of columns, binary PLY a structured array
-    names = vertex.dtype.names or () if isinstance(vertex, np.ndarray) else tuple(vertex)
-    if all(k in names for k in ("nx", "ny", "nz")):
-        return False, np.stack([np.asarray(vertex[k], dtype=np.float64).reshape(-1) for k in ("nx", "ny", "nz")], axis=1)
-    return False, None
-
-
-def _unit_normals(path: Path, normals: np.ndarray) -> np.ndarray:
-    length = np.linalg.norm(normals, axis=1, keepdims=True)
-    bad = ~(np.isfinite(length[:, 0]) & (length[:, 0] > 1e-12))
-    if bad.any():
-        raise MeshError(f"scan file {path} has {int(bad.sum())} normal(s) of zero length or NaN "
-                        f"(first at row {int(np.flatnonzero(bad)[0])}); expected unit outward normals.")
-    return normals / length
 
 
 def _fewest_points(meta: dict) -> tuple[int, str]:
@@ -150,75 +105,120 @@ def _fewest_points(meta: dict) -> tuple[int, str]:
     return MIN_SCAN_POINTS, "fewer points carry too little shape to name a part"
 
 
-def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool = False) -> Cloud:
+def normals_k(meta: dict) -> int:
+    """Neighbours of the estimated normals: the run's ``sampler.normals.k`` when recorded, else 16."""
+    sampler = (meta.get("data") or {}).get("sampler") or {}
+    recorded = sampler.get("normals") if isinstance(sampler, dict) else None
+    k = recorded.get("k", NORMALS_K) if isinstance(recorded, dict) else NORMALS_K
+    return int(k) if isinstance(k, (int, np.integer)) and not isinstance(k, bool) and k >= 3 else NORMALS_K
+
+
+def _check_viewpoint(viewpoint) -> np.ndarray | None:
+    if viewpoint is None:
+        return None
+    try:
+        view = np.asarray(list(viewpoint), dtype=np.float64)
+    except (TypeError, ValueError):
+        view = np.zeros(0)
+    if view.shape != (3,) or not np.isfinite(view).all():
+        raise ConfigError(f"predict.viewpoint should be null or 3 numbers [x, y, z], got {viewpoint!r} instead.")
+    return view
+
+
+def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool = False, *, units: str = "mm",
+               clean: CleanSettings | None = None, normals: str = "auto", viewpoint=None) -> Cloud:
     """Read one file into a cloud the run's network can take.
 
-    Meshes (STL, OBJ, OFF, GLB, PLY with faces; millimetres, though the unit-RMS normalisation
-    makes the unit immaterial) are sampled with the run's sampler: ``meta["data"]["sampler"]``
-    gives the mode (a single-view virtual scan when the run was trained on scans only, the full
-    surface otherwise), the oversampling before farthest-point thinning and the noise, and
-    ``meta["data"]["points"]`` the count. The face normals of the sampled points come along.
+    Meshes (STL, OBJ, OFF, GLB, PLY with faces) are sampled with the run's sampler:
+    ``meta["data"]["sampler"]`` gives the mode (a single-view virtual scan when the run was trained on
+    scans only, the full surface otherwise), the oversampling before farthest-point thinning and the
+    noise, and ``meta["data"]["points"]`` the count. The face normals of the sampled points come along.
 
-    Point files (``.xyz``/``.txt``/``.csv`` rows, ``.npy`` (N, 3), a PLY without faces, optionally
-    with ``nx ny nz``, ``.npz`` with ``points`` (N, 3) and optional ``normals`` (N, 3)) are thinned
-    by farthest-point subsampling when they hold more points than the training clouds, and kept
-    whole when they hold fewer (but at least enough for the backbone's neighbourhoods). When the
-    backbone takes normals and a point file has none, they are estimated on the thinned cloud by
-    local PCA over ``NORMALS_K`` neighbours, oriented by MST propagation and turned outward (see
-    :func:`shapes.data.estimate_normals`); ``source`` says so.
-    ``seed`` (None, int or numpy Generator) drives the sampling and the thinning.
+    Point files (E57, PLY without faces, ``.xyz``/``.txt``/``.csv``, ``.npy``, ``.npz``; see
+    :func:`shapes.data.read_points`) go, in this order: read (in ``units``, converted to mm) →
+    clean (:func:`shapes.data.clean_points` with ``clean``; None: the defaults, every step on) →
+    thin to the training point count by farthest-point subsampling (kept whole when smaller, but at
+    least enough for the backbone's neighbourhoods) → normalise to unit RMS radius → normals.
+
+    Normals (only when the backbone takes them): ``normals="auto"`` uses the file's and estimates them
+    when it has none, ``"file"`` uses only the file's (an error when it has none), ``"estimated"``
+    ignores the file's. Estimation is :func:`shapes.data.estimate_normals` on the normalised cloud
+    with k from the run's metadata (``sampler.normals.k``, else 16), each normal turned toward the
+    sensor: ``viewpoint`` (the file's frame and units) if given, else the file's own (an E57 scan's
+    pose, a PLY ``comment viewpoint``), else by MST propagation turned outward. ``source`` says which.
+    ``seed`` (None, int or numpy Generator) drives the reading, clean-up, sampling and thinning.
 
     Raises
     ------
     MeshError
-        Unreadable file, wrong array shape, too few points, or no normals for a backbone that needs
-        them when they cannot be estimated either.
+        Unreadable file, degenerate cloud, too few points after clean-up, or no normals for a
+        backbone that needs them when they cannot be estimated either.
     """
     path = Path(path)
-    suffix = path.suffix.lower()
     gen = rng(seed)
     data = meta["data"]
     target = int(data["points"])
-    is_mesh, normals = suffix in MESH_SUFFIXES, None
-    if suffix == ".ply":
-        is_mesh, normals = _ply_faces_and_normals(path)
-    if is_mesh:
+    scan = read_points(path, units, seed=gen)
+    if scan.is_mesh:
         sampler = data.get("sampler") or {}
         settings = {"points": target, "oversample": int(sampler.get("oversample", 2)),
                     "noise": float(sampler.get("noise", 0.0))}
-        scan = sampler.get("mode") == "scan"
-        points, normals, _ = sample_cloud(read_mesh(path), scan, settings, gen)  # as the shards were
-        source = f"mesh, {'virtual scan' if scan else 'surface'} of {target} points"
-    else:
-        if suffix == ".npz":
-            if not path.is_file() or path.stat().st_size == 0:
-                raise MeshError(f"scan file {path} is missing or empty (0 bytes).")
-            points, normals = _read_npz(path)
-        else:
-            points = read_scan(path, min_points=0)
-        fewest, why = _fewest_points(meta)
-        if len(points) < fewest:
-            raise MeshError(f"scan file {path} has {len(points)} points; need at least {fewest} ({why}).")
-        if normals is not None:
-            normals = _unit_normals(path, normals)
-        source = f"points, {len(points)}"
-        if len(points) > target:
-            keep = farthest_point_subsample(points, target, seed=gen)
-            points, normals = points[keep], None if normals is None else normals[keep]
-            source += f" thinned to {target}"
+        virtual = sampler.get("mode") == "scan"
+        points, nrm, _ = sample_cloud(scan.mesh, virtual, settings, gen)  # as the shards were
+        return Cloud(points.astype(np.float32), nrm.astype(np.float32),
+                     f"mesh, {'virtual scan' if virtual else 'surface'} of {target} points")
+    fewest, why = _fewest_points(meta)
+    if len(scan.points) < fewest:
+        raise MeshError(f"scan file {path} has {len(scan.points)} points; need at least {fewest} ({why}).")
+    source = f"points, {scan.rows}"
+    if len(scan.points) < scan.rows:
+        source += f" read as {len(scan.points)}"
+    steps = []
+    settings = clean if clean is not None else CleanSettings()
+    if settings.stray_points or settings.support_plane or settings.cluster:
+        cleaned = clean_points(scan.points, settings, seed=gen)
+        steps = cleaned.steps
+        removed = len(scan.points) - len(cleaned.keep)
+        if removed:
+            scan = scan.subset(cleaned.keep)
+            source += f", {removed} removed by clean-up,"
+            check_spread(scan.points, f"scan file {path} after clean-up", fewest)
+    if len(scan.points) < fewest:
+        raise MeshError(f"scan file {path} has {len(scan.points)} points after clean-up; need at least {fewest} ({why}).")
+    if normals == "estimated":
+        scan.normals = None
+    elif normals == "file" and needs_normals and scan.normals is None:
+        raise MeshError(f"scan file {path} has no surface normals and predict.normals=file forbids estimating them; "
+                        "give a PLY with nx ny nz, 6 columns or a .npz with 'normals', or set predict.normals=auto.")
+    points, nrm = scan.points, scan.normals
+    sensors = scan.sensor_of_points()
+    if viewpoint is not None:
+        sensors = np.broadcast_to(np.asarray(viewpoint, dtype=np.float64) * UNITS[units], points.shape)
+    if len(points) > target:
+        keep = farthest_point_subsample(points, target, seed=gen)
+        points, nrm = points[keep], None if nrm is None else nrm[keep]
+        sensors = None if sensors is None else sensors[keep]
+        source += f" thinned to {target}"
+    try:
+        points, centroid, scale = normalise(points)
+    except InputError as exc:  # e.g. every point at one spot
+        raise MeshError(f"scan file {path}: {exc}") from None
+    source += " with normals" if nrm is not None else ""
+    if needs_normals and nrm is None:
+        k = normals_k(meta)
         try:
-            points, _, _ = normalise(points)
-        except InputError as exc:  # e.g. every point at one spot
-            raise MeshError(f"scan file {path}: {exc}") from None
-        source += " with normals" if normals is not None else ""
-        if needs_normals and normals is None:
-            try:
-                normals, _ = estimate_normals(points, k=NORMALS_K)
-            except InputError as exc:  # e.g. too few points for the neighbourhoods
-                raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
-                                "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
-            source += f", normals estimated (local PCA, k={NORMALS_K}, MST orientation)"
-    return Cloud(points.astype(np.float32), None if normals is None else normals.astype(np.float32), source)
+            nrm, _ = estimate_normals(points, k=k)
+        except InputError as exc:  # e.g. too few points for the neighbourhoods
+            raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
+                            "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
+        if sensors is not None:
+            nrm = orient_toward(points, nrm, (sensors - centroid) / scale)
+            how = "toward the option's viewpoint" if viewpoint is not None else "toward the file's sensor position"
+        else:
+            how = "MST orientation"
+        source += f", normals estimated (local PCA, k={k}, {how})"
+    return Cloud(points.astype(np.float32), None if nrm is None else nrm.astype(np.float32), source,
+                 notes=list(scan.notes), cleanup=steps)
 
 
 @torch.no_grad()
@@ -281,7 +281,7 @@ def calibrate(model, meta: dict, rotations: torch.Tensor, accept: float, data_di
             "scores": scores.tolist()}
 
 
-def _row(path: Path, root: Path, cloud: Cloud, probs: np.ndarray, votes: np.ndarray, score: float,
+def _row(name: str, cloud: Cloud, probs: np.ndarray, votes: np.ndarray, score: float,
          threshold: float, meta: dict, symmetry: str) -> dict:
     classes = list(meta["classes"])
     order = np.argsort(-probs, kind="stable")
@@ -292,7 +292,7 @@ def _row(path: Path, root: Path, cloud: Cloud, probs: np.ndarray, votes: np.ndar
     if known and meta["twins"][top] != top and symmetry == "E3":
         notes.append(f"{HAND_NOTE} ({top} or {meta['twins'][top]})")
     return {
-        "file": path.relative_to(root).as_posix() if root.is_dir() else path.name,
+        "file": name,
         "answer": top if known else UNKNOWN,
         "known": known,
         "top": {"class": top, "probability": float(probs[order[0]])},
@@ -303,51 +303,95 @@ def _row(path: Path, root: Path, cloud: Cloud, probs: np.ndarray, votes: np.ndar
         "poses_agreed": agree == len(votes),
         "notes": notes,
         "source": cloud.source,
+        "reading": cloud.notes,
+        "cleanup": cloud.cleanup,
         "probabilities": {c: float(p) for c, p in zip(classes, probs)},
     }
 
 
+def _error_text(exc: BaseException, path: Path, name: str) -> str:
+    """One line for a file's error row: the message without the leading 'scan file <path>'."""
+    text = " ".join(str(exc).split()) if isinstance(exc, ShapesError) else \
+        f"could not be read ({type(exc).__name__}: {' '.join(str(exc).split())[:160]})"
+    for prefix in (f"scan file {path}", f"mesh file {path}"):
+        if text.startswith(prefix):
+            text = text[len(prefix):].lstrip(" ,:")
+            break
+    return text.replace(str(path), name) or type(exc).__name__
+
+
 def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: int = 8, regime: str = "any",
                   accept: float = 0.95, calibration: str | os.PathLike | None = None, seed: int = 0,
-                  batch_size: int = 32, threads: int | None = None, out: str | os.PathLike | None = None) -> dict:
+                  batch_size: int = 32, threads: int | None = None, out: str | os.PathLike | None = None,
+                  units: str = "mm", clean: CleanSettings | dict | None = None, normals: str = "auto",
+                  viewpoint=None) -> dict:
     """Classify every scan or mesh in ``inputs`` (a file or a folder) with the run's checkpoint.
 
     Every cloud is scored under the same ``poses`` random poses of ``regime``, drawn from
     ``seed``, so a file's answer depends only on its content, the run and the seed. Every file
-    is read and checked before any is scored; ``out`` (a JSON file) is written, whole, at the end.
+    is read and checked before any is scored; a file that cannot be read or used (see
+    :func:`read_input` for ``units``, ``clean``, ``normals`` and ``viewpoint``) gets an error row
+    and the others are still classified. ``out`` (a JSON file) is written, whole, at the end.
 
     Returns
     -------
     result : dict
         ``checkpoint``, ``backbone``, ``symmetry``, ``poses``, ``regime``, ``seed``, ``threshold``
-        (see :func:`calibrate`, without the scores) and ``results``: one dict per file with
-        ``answer`` (a class, or ``UNKNOWN``), ``known``, ``top`` and ``runner_up`` (class and
-        probability), ``score``, ``poses_agreeing`` of ``poses``, ``notes`` and ``probabilities``.
+        (see :func:`calibrate`, without the scores), ``failed`` (the number of error rows) and
+        ``results``: one dict per file with ``answer`` (a class, or ``UNKNOWN``), ``known``, ``top``
+        and ``runner_up`` (class and probability), ``score``, ``poses_agreeing`` of ``poses``,
+        ``notes``, ``source``, ``cleanup`` and ``probabilities`` — or, for a file that failed,
+        ``file`` and ``error`` (one line).
+
+    Raises
+    ------
+    ShapesError
+        A usage error: a bad option, no input, no checkpoint, no calibration data.
     """
     _check_options(poses, regime, accept, batch_size)
+    if units not in UNITS:
+        raise ConfigError(f"predict.units should be one of {', '.join(UNITS)}, got {units!r} instead.")
+    if normals not in NORMAL_MODES:
+        raise ConfigError(f"predict.normals should be one of {', '.join(NORMAL_MODES)}, got {normals!r} instead.")
+    view = _check_viewpoint(viewpoint)
+    settings = clean if isinstance(clean, CleanSettings) else CleanSettings.from_dict(clean)
     set_threads(threads)
-    files = find_inputs(inputs)
+    files = find_inputs(inputs, exclude=out)
     ckpt = find_checkpoint(run)
     model, meta = load_classifier(ckpt)
-    clouds = [read_input(f, meta, seed=seed, needs_normals=model.uses_normals) for f in files]
+    root = Path(inputs)
+    names = [p.relative_to(root).as_posix() if root.is_dir() else p.name for p in files]
+    clouds = []
+    for path, name in zip(files, names):
+        try:
+            clouds.append(read_input(path, meta, seed=seed, needs_normals=model.uses_normals, units=units,
+                                     clean=settings, normals=normals, viewpoint=view))
+        except Exception as exc:  # one bad file never stops the batch; its row says why
+            if not isinstance(exc, (ShapesError, OSError, ValueError, MemoryError, EOFError)):
+                raise
+            clouds.append(_error_text(exc, path, name))
     rotations = random_poses(regime, poses, generator=torch_generator(seed))  # (R, 3, 3)
     threshold = calibrate(model, meta, rotations, accept, calibration, batch_size)
     threshold.pop("scores")
     twin_index, symmetry = _twin_index(meta), model.symmetry
-    root = Path(inputs)
     rows = []
-    for path, cloud in zip(files, clouds):
-        normals = torch.as_tensor(cloud.normals)[None] if model.uses_normals else None
-        probs, votes = pose_averaged(model, torch.as_tensor(cloud.points)[None], normals, rotations, batch_size)
+    for path, name, cloud in zip(files, names, clouds):
+        if isinstance(cloud, str):
+            rows.append({"file": name, "error": cloud})
+            continue
+        nrm = torch.as_tensor(cloud.normals)[None] if model.uses_normals else None
+        probs, votes = pose_averaged(model, torch.as_tensor(cloud.points)[None], nrm, rotations, batch_size)
         probs = probs[0].numpy()
         score = float(known_scores(probs[None], twin_index, symmetry == "E3")[0])
-        rows.append(_row(path, root, cloud, probs, votes[0].numpy(), score, threshold["value"], meta, symmetry))
+        rows.append(_row(name, cloud, probs, votes[0].numpy(), score, threshold["value"], meta, symmetry))
     result = {"checkpoint": str(ckpt), "backbone": meta["backbone"]["name"], "symmetry": symmetry,
               "classes": list(meta["classes"]), "poses": poses, "regime": regime, "seed": seed,
               "score": "largest pose-averaged probability" + (
                   "; a handed class counts with its mirror twin (this E3 backbone cannot see hand)"
                   if symmetry == "E3" else ""),
-              "threshold": threshold, "results": rows}
+              "reading": {"units": units, "normals": normals,
+                          "viewpoint": None if view is None else view.tolist(), "clean": settings.as_dict()},
+              "threshold": threshold, "failed": sum(1 for r in rows if "error" in r), "results": rows}
     if out is not None:
         write_json(out, result)  # serialised in full before the file is opened, then renamed into place
     return result
@@ -363,11 +407,17 @@ def format_table(result: dict) -> str:
     header = ("file", "answer", "p", "runner-up", "p", "score", "poses", "note")
     body = []
     for r in result["results"]:
+        if "error" in r:
+            body.append(f"error: {r['file']}: {r['error']}")  # one line of its own, in file order
+            continue
         answer = r["answer"] if r["known"] else f"{UNKNOWN}, nearest {r['top']['class']}"
         body.append((r["file"], answer, f"{r['top']['probability']:.2f}", r["runner_up"]["class"],
                      f"{r['runner_up']['probability']:.2f}", f"{r['score']:.2f}",
                      f"{r['poses_agreeing']}/{r['poses']}", "; ".join(r["notes"])))
-    widths = [max(len(row[i]) for row in [header, *body]) for i in range(len(header))]
+    rows = [row for row in [header, *body] if not isinstance(row, str)]
+    widths = [max(len(row[i]) for row in rows) for i in range(len(header))]
     for row in [header, *body]:
-        lines.append("  ".join(cell.ljust(w) for cell, w in zip(row, widths)).rstrip())
+        lines.append(row if isinstance(row, str) else "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
+    if result.get("failed"):
+        lines.append(f"{result['failed']} of {len(result['results'])} file(s) could not be classified (error rows above)")
     return "\n".join(lines)

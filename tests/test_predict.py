@@ -12,7 +12,7 @@ from scipy.spatial.transform import Rotation
 
 from shapes.backbones import Classifier, build_backbone
 from shapes.cli import main
-from shapes.data import load_split, read_meta
+from shapes.data import CleanSettings, load_split, read_meta
 from shapes.evaluate import load_classifier
 from shapes.geometry import random_poses
 from shapes.predict import HAND_NOTE, UNKNOWN, format_table, predict_files, read_input
@@ -40,7 +40,8 @@ def tiny(tmp_path_factory):
     root = tmp_path_factory.mktemp("predict")
     data = root / "data"
     assert main(["sample", f"meshes={DEMO}", f"data={data}", "sample.points=64",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1",
+                 "sample.mode=surface"]) == 0  # full surfaces: the mesh check below samples them
     e3 = train_classifier(build_backbone("distance", hidden=16, k=8, layers=2), data, root / "e3",
                           TrainSettings(epochs=15, batch_size=16, threads=1))
     meta = torch.load(e3, weights_only=True)["meta"]
@@ -195,15 +196,20 @@ def test_point_files_are_thinned_to_the_training_count_and_keep_their_normals(ti
     assert read_input(tmp_path / "bare.ply", meta).normals is None
     with_normals = read_input(tmp_path / "with_normals.npz", meta)
     np.testing.assert_allclose(np.linalg.norm(with_normals.normals, axis=1), 1.0, atol=1e-6)
-    rows = predict_files(tiny["se3"], tmp_path / "with_normals.npz", poses=2)["results"]
+    rows = predict_files(tiny["se3"], tmp_path / "with_normals.npz", poses=2, clean=CleanSettings.off())["results"]
     assert rows[0]["source"] == "points, 500 thinned to 64 with normals"
+    cleaned = predict_files(tiny["se3"], tmp_path / "with_normals.npz", poses=2)["results"][0]
+    removed = sum(step["removed"] for step in cleaned["cleanup"])
+    assert [step["step"] for step in cleaned["cleanup"]] == ["stray points", "support plane", "largest cluster"]
+    assert cleaned["source"] == (f"points, 500, {removed} removed by clean-up, thinned to 64 with normals"
+                                 if removed else "points, 500 thinned to 64 with normals")
     # a PLY vertex list with nx ny nz (the PLY format's normal properties), written by hand
     normals = mesh.face_normals[faces[:64]] * 2.0  # not unit length: read_input rescales them
     header = ("ply\nformat ascii 1.0\nelement vertex 64\n" + "".join(f"property float {k}\n" for k in
               ("x", "y", "z", "nx", "ny", "nz")) + "end_header\n")
     rows = "\n".join(" ".join(f"{v:.7f}" for v in row) for row in np.hstack([points[:64], normals]))
     (tmp_path / "oriented.ply").write_text(header + rows + "\n")
-    oriented = read_input(tmp_path / "oriented.ply", meta)
+    oriented = read_input(tmp_path / "oriented.ply", meta, clean=CleanSettings.off())
     np.testing.assert_allclose(oriented.normals, normals / 2.0, atol=1e-5)
 
 
@@ -212,7 +218,7 @@ def test_a_bare_xyz_file_gets_estimated_normals_for_a_backbone_that_takes_them(t
     sphere /= np.linalg.norm(sphere, axis=1, keepdims=True)
     np.savetxt(tmp_path / "ball.xyz", sphere * 20.0 + 5.0)  # millimetres, off centre
     meta = torch.load(tiny["se3"], weights_only=True)["meta"]
-    cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True)
+    cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off())
     assert cloud.source == "points, 300 thinned to 64, normals estimated (local PCA, k=16, MST orientation)"
     # closed form: the outward normal of a sphere at p (centred at 0 after normalising) is p / |p|
     radial = cloud.points / np.linalg.norm(cloud.points, axis=1, keepdims=True)
@@ -264,21 +270,20 @@ def _bad_inputs(tmp: Path) -> None:
     (tmp / "mixed" / "broken.stl").write_bytes(b"")
 
 
+# A usage error (a bad option, no input, no run) stops before any file is read: exit 2, nothing written.
 @pytest.mark.parametrize("run,target,options,needle", [
     ("e3", "nowhere.stl", [], "not found"),
     ("e3", "empty", [], "holds no scan or mesh files"),
-    ("e3", "garbage.stl", [], "garbage.stl"),
-    ("e3", "flat.npy", [], "shape (N, 3), got (50, 2)"),
-    ("e3", "few.npy", [], "has 20 points; need at least 32"),
-    ("se3", "few_for_k.npz", [], "need at least 41 (the vector_gate backbone compares each point with its k = 40"),
-    ("e3", "no_points.npz", [], "should hold an array 'points'"),
-    ("e3", "notes.doc", [], "unsupported suffix '.doc'"),
-    ("e3", "mixed", [], "broken.stl is empty"),
     ("e3", None, [], "predict.input is not set"),
     ("e3", "bare.npy", ["predict.accept=1.5"], "predict.accept should be a share in (0, 1]"),
     ("e3", "bare.npy", ["predict.regime=mirrored"], "predict.regime should be one of cad, upright, any"),
     ("e3", "bare.npy", ["predict.regime=so3"], "predict.regime 'so3' is now called 'any'"),
     ("e3", "bare.npy", ["predict.poses=0"], "predict.poses should be an integer >= 1"),
+    ("e3", "bare.npy", ["predict.units=cm"], "predict.units should be one of mm, m, in"),
+    ("e3", "bare.npy", ["predict.normals=mesh"], "predict.normals should be one of auto, file, estimated"),
+    ("e3", "bare.npy", ["predict.viewpoint=[1,2]"], "predict.viewpoint should be null or 3 numbers"),
+    ("e3", "bare.npy", ["predict.clean.stray_std=-1"], "clean.stray_std should be a positive number"),
+    ("e3", "bare.npy", ["+predict.clean.colour=1"], "clean has no option 'colour'"),
     ("nowhere", "bare.npy", [], "no checkpoint"),
     ("e3", "bare.npy", ["predict.calibration=nowhere"], "cannot calibrate"),
 ])
@@ -301,8 +306,151 @@ def test_a_failed_run_leaves_the_previous_json_untouched(tiny, tmp_path, monkeyp
     np.save(good, np.random.default_rng(0).normal(size=(80, 3)))
     assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=1"]) == 0
     written = (tmp_path / "predictions.json").read_bytes()
-    np.save(good, np.zeros((80, 4)))
-    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=1"]) == 2
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=0"]) == 2
     capsys.readouterr()
     assert (tmp_path / "predictions.json").read_bytes() == written
     assert sorted(p.name for p in tmp_path.iterdir()) == ["good.npy", "predictions.json"]
+    # a bad file is no usage error: the run completes, its row says why, and the status is 1
+    np.save(good, np.zeros((80, 4)))
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={good}", "predict.poses=1"]) == 1
+    (row,) = json.loads((tmp_path / "predictions.json").read_text())["results"]
+    assert row == {"file": "good.npy", "error": "should hold an array of shape (N, 3), got (80, 4) instead "
+                                                 "(or (N, 6): x y z nx ny nz)."}
+    assert "error: good.npy: should hold an array of shape (N, 3)" in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------- a batch that survives bad scans
+
+
+def _ply_binary(path: Path, points: np.ndarray, promise: int | None = None) -> None:
+    # source: PLY format (Turk 1994): ASCII header, then little-endian float32 rows of the vertex element
+    header = (f"ply\nformat binary_little_endian 1.0\nelement vertex {promise or len(points)}\n"
+              "property float x\nproperty float y\nproperty float z\nend_header\n").encode()
+    path.write_bytes(header + points.astype("<f4").tobytes())
+
+
+def _cloud(n=200, seed=0):
+    return np.random.default_rng(seed).normal(size=(n, 3)) * [20.0, 10.0, 5.0]
+
+
+def _write_bad_scans(folder: Path) -> dict:
+    """Each bad file and a phrase its one-line error must hold."""
+    folder.mkdir(parents=True, exist_ok=True)
+    pts = _cloud()
+    (folder / "empty.xyz").write_bytes(b"")
+    _ply_binary(folder / "truncated.ply", pts)
+    (folder / "truncated.ply").write_bytes((folder / "truncated.ply").read_bytes()[:-100])
+    (folder / "promises_more.ply").write_text(
+        "ply\nformat ascii 1.0\nelement vertex 300\nproperty float x\nproperty float y\nproperty float z\n"
+        "end_header\n" + "\n".join(" ".join(f"{v:.5f}" for v in r) for r in pts) + "\n")
+    nan = pts.copy()
+    nan[7] = np.nan
+    np.savetxt(folder / "nan_rows.xyz", nan)
+    np.savetxt(folder / "two_columns.csv", pts[:, :2], delimiter=",")
+    np.savetxt(folder / "identical.xyz", np.tile([1.0, 2.0, 3.0], (50, 1)))
+    (folder / "single.xyz").write_text("1 2 3\n")
+    t = np.linspace(0, 1, 100)[:, None]
+    np.savetxt(folder / "collinear.xyz", t * [1.0, 2.0, 3.0] + [5.0, 0.0, 0.0])
+    np.save(folder / "coplanar.npy", np.c_[pts[:, :2], np.full(len(pts), 4.0)])
+    np.savetxt(folder / "few_distinct.xyz", np.repeat(pts[:40], 25, axis=0))
+    # decimal commas with ',' between the columns as well: '-0,1072,-9,1757,3,2' cannot be split
+    (folder / "decimal_comma.csv").write_text("\n".join(",".join(f"{v:.4f}".replace(".", ",") for v in r) for r in pts))
+    (folder / "latin1.txt").write_bytes("x y z  # Messung \xb0C\n".encode("latin-1") +
+                                        "\n".join(" ".join(f"{v:.4f}" for v in r) for r in pts).encode())
+    (folder / "renamed_binary.xyz").write_bytes(pts.astype("<f8").tobytes())
+    (folder / "zero.e57").write_bytes(b"")
+    (folder / "corrupt.e57").write_bytes(b"ASTM-E57" + bytes(range(256)) * 8)
+    (folder / "scan.las").write_bytes(b"LASF" + b"\0" * 200)
+    (folder / "words.xyz").write_text("1 2 3\n4 5 6\n7 eight 9\n")
+    np.save(folder / "flat.npy", pts[:, :2])
+    np.savez(folder / "no_points.npz", cloud=pts)
+    (folder / "garbage.stl").write_bytes(b"\x00not a mesh at all" * 3)
+    np.save(folder / "few.npy", pts[:20])
+    (folder / "unreadable").mkdir()  # a sub-folder with no readable file
+    (folder / "unreadable" / "a.stl").write_bytes(b"")
+    (folder / "unreadable" / "b.ply").write_bytes(b"\x00\x01 not a ply" * 4)
+    return {
+        "empty.xyz": "is empty (0 bytes)",
+        "truncated.ply": "truncated binary PLY: the header promises 200 vertices (2400 bytes) but 2300 bytes follow",
+        "promises_more.ply": "the PLY header promises 300 vertices, found 200 rows",
+        "nan_rows.xyz": "NaN or inf coordinates (first at row 7)",
+        "two_columns.csv": "line 1: expected at least 3 columns (x y z), found 2",
+        "identical.xyz": "all 50 points are identical",
+        "single.xyz": "holds a single point",
+        "collinear.xyz": "all 100 points lie on one line",
+        "coplanar.npy": "all 200 points lie on one plane",
+        "few_distinct.xyz": "only 40 distinct points among 1000 rows",
+        "decimal_comma.csv": "decimal commas",
+        "latin1.txt": "is not a UTF-8 text file",
+        "renamed_binary.xyz": "is binary (it holds NUL bytes)",
+        "zero.e57": "is empty (0 bytes)",
+        "corrupt.e57": "could not be read as E57",
+        "scan.las": "unsupported suffix '.las'",
+        "words.xyz": "line 3: expected numbers, found '7 eight 9'",
+        "flat.npy": "shape (N, 3), got (200, 2)",
+        "no_points.npz": "should hold an array 'points'",
+        "garbage.stl": "truncated binary STL",
+        "few.npy": "has 20 points; need at least 32",
+        "unreadable/a.stl": "is empty (0 bytes)",
+        "unreadable/b.ply": "could not be parsed as PLY",
+    }
+
+
+def test_every_bad_scan_gets_its_own_error_row_and_the_rest_are_classified(tiny, tmp_path, monkeypatch, capsys):
+    folder = tmp_path / "scans"
+    expected = _write_bad_scans(folder)
+    good = {"good.npy", "good_semicolon.csv", "hex_nut.ply"}
+    np.save(folder / "good.npy", _cloud(300, seed=1))
+    # a decimal-comma file with ';' between the columns reads (common practice in locales that write 3,2)
+    (folder / "good_semicolon.csv").write_text("x;y;z\n" + "\n".join(
+        ";".join(f"{v:.4f}".replace(".", ",") for v in r) for r in _cloud(300, seed=1)))
+    (folder / "hex_nut.ply").write_bytes(first_mesh("hex_nut").read_bytes())
+    monkeypatch.chdir(tmp_path)
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={folder}", "predict.poses=2"]) == 1
+    captured = capsys.readouterr()
+    assert "Traceback" not in captured.out + captured.err
+    (summary,) = captured.err.strip().splitlines()
+    assert summary.startswith("error: 23 of 26 file(s) could not be classified")
+    saved = json.loads((tmp_path / "predictions.json").read_text())
+    rows = {r["file"]: r for r in saved["results"]}
+    assert set(rows) == set(expected) | good and saved["failed"] == len(expected) >= 15
+    table = captured.out.splitlines()
+    for name, needle in expected.items():
+        assert needle in rows[name]["error"], (name, rows[name])
+        assert "\n" not in rows[name]["error"] and set(rows[name]) == {"file", "error"}
+        (line,) = [ln for ln in table if ln.startswith(f"error: {name}: ")]
+        assert needle in line
+    for name in good:
+        assert rows[name]["top"]["class"] in CLASSES and "error" not in rows[name]
+    # the two spellings of the same cloud read to the same points, so they get the same answer
+    assert rows["good.npy"]["probabilities"] == pytest.approx(rows["good_semicolon.csv"]["probabilities"], abs=1e-6)
+
+
+def test_a_folder_of_only_bad_files_still_writes_its_rows_and_exits_1(tiny, tmp_path, monkeypatch, capsys):
+    folder = tmp_path / "bad"
+    folder.mkdir()
+    (folder / "a.xyz").write_bytes(b"")
+    (folder / "b.e57").write_bytes(b"not an e57 file at all")
+    monkeypatch.chdir(tmp_path)
+    assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={folder}", "predict.poses=1"]) == 1
+    saved = json.loads((tmp_path / "predictions.json").read_text())
+    assert [r["file"] for r in saved["results"]] == ["a.xyz", "b.e57"] and saved["failed"] == 2
+    assert capsys.readouterr().err.startswith("error: 2 of 2 file(s) could not be classified")
+
+
+@pytest.mark.slow
+def test_a_ten_million_point_scan_is_classified_beside_a_small_one(tiny, tmp_path):
+    folder = tmp_path / "big"
+    folder.mkdir()
+    gen = np.random.default_rng(0)
+    n = 10_000_000
+    unit = gen.normal(size=(n, 3)).astype(np.float32)
+    unit /= np.linalg.norm(unit, axis=1, keepdims=True)
+    _ply_binary(folder / "ten_million.ply", unit * np.float32(20.0))
+    del unit
+    np.save(folder / "small.npy", _cloud(300))
+    result = predict_files(tiny["e3"], folder, poses=1, seed=0)
+    rows = {r["file"]: r for r in result["results"]}
+    assert result["failed"] == 0 and set(rows) == {"ten_million.ply", "small.npy"}
+    assert rows["ten_million.ply"]["source"].startswith("points, 10000000 read as ")
+    assert any("thinned to" in note and "while reading" in note for note in rows["ten_million.ply"]["reading"])
