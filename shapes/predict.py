@@ -27,13 +27,14 @@ from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.data import MIN_SCAN_POINTS, READ_SUFFIXES, UNITS, CleanSettings, check_spread, clean_points, load_split
 from shapes.data import estimate_normals, farthest_point_subsample, normalise, orient_toward, read_points, sample_cloud
+from shapes.data._normals import ORIENTATIONS
 from shapes.errors import ConfigError, DataError, InputError, MeshError, ShapesError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
 from shapes.geometry import check_regime, random_poses
 from shapes.seeding import rng, torch_generator
 
 __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "NORMAL_MODES", "Cloud", "find_inputs",
-           "read_input", "normals_k",
+           "read_input", "normals_k", "normals_orientation",
            "pose_averaged", "known_scores", "calibrate", "predict_files", "format_table"]
 
 SUPPORTED = READ_SUFFIXES  # every suffix shapes.data.read_points takes (meshes, E57, PLY, text, NPY, NPZ)
@@ -113,6 +114,15 @@ def normals_k(meta: dict) -> int:
     return int(k) if isinstance(k, (int, np.integer)) and not isinstance(k, bool) and k >= 3 else NORMALS_K
 
 
+def normals_orientation(meta: dict) -> str:
+    """How estimated normals are signed without a sensor position: the run's recorded
+    ``sampler.normals.orientation`` (so scan files match the training clouds), else MST propagation."""
+    sampler = (meta.get("data") or {}).get("sampler") or {}
+    recorded = sampler.get("normals") if isinstance(sampler, dict) else None
+    way = recorded.get("orientation") if isinstance(recorded, dict) else None
+    return way if way in ORIENTATIONS else "propagate"
+
+
 def _check_viewpoint(viewpoint) -> np.ndarray | None:
     if viewpoint is None:
         return None
@@ -145,7 +155,9 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
     ignores the file's. Estimation is :func:`shapes.data.estimate_normals` on the normalised cloud
     with k from the run's metadata (``sampler.normals.k``, else 16), each normal turned toward the
     sensor: ``viewpoint`` (the file's frame and units) if given, else the file's own (an E57 scan's
-    pose, a PLY ``comment viewpoint``), else by MST propagation turned outward. ``source`` says which.
+    pose, a PLY ``comment viewpoint``), else the way the run's training clouds were signed
+    (``sampler.normals.orientation``, e.g. single-view) or, when the run records none, by MST
+    propagation turned outward. ``source`` says which.
     ``seed`` (None, int or numpy Generator) drives the reading, clean-up, sampling and thinning.
 
     Raises
@@ -205,9 +217,9 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
         raise MeshError(f"scan file {path}: {exc}") from None
     source += " with normals" if nrm is not None else ""
     if needs_normals and nrm is None:
-        k = normals_k(meta)
+        k, way = normals_k(meta), normals_orientation(meta)
         try:
-            nrm, _ = estimate_normals(points, k=k)
+            nrm, _ = estimate_normals(points, k=k, orientation=way)
         except InputError as exc:  # e.g. too few points for the neighbourhoods
             raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
                             "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
@@ -215,7 +227,7 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
             nrm = orient_toward(points, nrm, (sensors - centroid) / scale)
             how = "toward the option's viewpoint" if viewpoint is not None else "toward the file's sensor position"
         else:
-            how = "MST orientation"
+            how = "MST orientation" if way == "propagate" else f"{way} orientation"
         source += f", normals estimated (local PCA, k={k}, {how})"
     return Cloud(points.astype(np.float32), None if nrm is None else nrm.astype(np.float32), source,
                  notes=list(scan.notes), cleanup=steps)

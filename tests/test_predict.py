@@ -15,7 +15,7 @@ from shapes.cli import main
 from shapes.data import CleanSettings, load_split, read_meta
 from shapes.evaluate import load_classifier
 from shapes.geometry import random_poses
-from shapes.predict import HAND_NOTE, UNKNOWN, format_table, predict_files, read_input
+from shapes.predict import HAND_NOTE, UNKNOWN, format_table, normals_k, normals_orientation, predict_files, read_input
 from shapes.seeding import torch_generator
 from shapes.train import TrainSettings, save_checkpoint, train_classifier
 
@@ -41,7 +41,7 @@ def tiny(tmp_path_factory):
     data = root / "data"
     assert main(["sample", f"meshes={DEMO}", f"data={data}", "sample.points=64",
                  "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1",
-                 "sample.mode=surface"]) == 0  # full surfaces: the mesh check below samples them
+                 "sample.mode=surface", "sample.normals=mesh"]) == 0  # full surfaces with the mesh's normals
     e3 = train_classifier(build_backbone("distance", hidden=16, k=8, layers=2), data, root / "e3",
                           TrainSettings(epochs=15, batch_size=16, threads=1))
     meta = torch.load(e3, weights_only=True)["meta"]
@@ -228,6 +228,14 @@ def test_a_bare_xyz_file_gets_estimated_normals_for_a_backbone_that_takes_them(t
     assert read_input(tmp_path / "ball.xyz", meta).normals is None  # a backbone without normals gets none
 
 
+def test_estimated_normals_follow_the_run_k_and_orientation_when_recorded():
+    # the sampler metadata may lack the normals key (older runs): k 16 and MST propagation, as before
+    assert normals_k({"data": {"sampler": {}}}) == 16 and normals_orientation({"data": {}}) == "propagate"
+    meta = {"data": {"sampler": {"normals": {"source": "estimated", "k": 24, "orientation": "single-view"}}}}
+    assert normals_k(meta) == 24 and normals_orientation(meta) == "single-view"
+    assert normals_k({"data": {"sampler": {"normals": {"k": "many"}}}}) == 16  # unreadable: the default
+
+
 def test_same_seed_same_answer(tiny):
     a = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
     b = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
@@ -275,7 +283,7 @@ def _bad_inputs(tmp: Path) -> None:
     ("e3", "nowhere.stl", [], "not found"),
     ("e3", "empty", [], "holds no scan or mesh files"),
     ("e3", None, [], "predict.input is not set"),
-    ("e3", "bare.npy", ["predict.accept=1.5"], "predict.accept should be a share in (0, 1]"),
+    ("e3", "bare.npy", ["predict.accept=1.5"], "predict.accept should be a finite number in (0, 1]"),
     ("e3", "bare.npy", ["predict.regime=mirrored"], "predict.regime should be one of cad, upright, any"),
     ("e3", "bare.npy", ["predict.regime=so3"], "predict.regime 'so3' is now called 'any'"),
     ("e3", "bare.npy", ["predict.poses=0"], "predict.poses should be an integer >= 1"),
