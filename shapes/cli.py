@@ -155,10 +155,22 @@ def _latest_run(run: str) -> str:
     if run != "latest":
         return run
     found = sorted(Path("runs").glob("**/checkpoint.pt"), key=lambda p: p.stat().st_mtime)
-    if not found:
-        raise ConfigError("run=latest but no trained run exists under runs/; train one with `shapes train` "
-                          "or name it with run=<folder>.")
-    return str(found[-1].parent)
+    finished = [p for p in found if _run_status(p.parent) not in ("interrupted", "diverged")]
+    if not finished:
+        passed = f" ({len(found)} interrupted or diverged run(s) passed over)" if found else ""
+        raise ConfigError(f"run=latest but no finished trained run exists under runs/{passed}; train one with "
+                          "`shapes train` or name it with run=<folder>.")
+    return str(finished[-1].parent)
+
+
+def _run_status(run_dir: Path) -> str | None:
+    """The ``status`` in a run's train_history.json (None when it has none: an older run)."""
+    import json
+
+    try:
+        return json.loads((run_dir / "train_history.json").read_text()).get("status")
+    except (OSError, ValueError, AttributeError):
+        return None
 
 
 def _run_parts(cfg) -> None:

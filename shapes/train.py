@@ -22,7 +22,7 @@ from shapes._atomic import atomic_path, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
-from shapes.errors import ConfigError, Interrupted, TrainingError
+from shapes.errors import Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
@@ -144,7 +144,9 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     """Train ``backbone`` + head on the shards in ``data_dir``; write the best checkpoint to ``run_dir``.
 
     Returns the checkpoint path. Files written: ``checkpoint.pt`` (best validation accuracy),
-    ``train_history.json`` (one row per epoch). Both are renamed into place when complete.
+    ``train_history.json`` (one row per epoch, and ``status``: complete, interrupted or diverged). Both
+    are renamed into place when complete. A non-finite loss or weights raise :class:`TrainingError`
+    and a Ctrl-C :class:`shapes.errors.Interrupted`; either way the last good checkpoint is kept.
     """
     s = check_settings(settings or TrainSettings())
     set_threads(s.threads)
@@ -193,6 +195,14 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     def kept() -> str:
         return (f"the best checkpoint so far (epoch {saved}) is kept at {ckpt}" if saved
                 else "no checkpoint was written")
+
+    def write_history(status: str) -> None:
+        """``train_history.json`` with the run's status: running, complete, interrupted or diverged
+        (``run=latest`` passes over the last two)."""
+        if rank == 0 and (history or saved):
+            write_json(run_dir / "train_history.json", {"status": status, "history": history,
+                                                        "best_val_accuracy": best[0], "best_epoch": saved,
+                                                        "wall_seconds": time.perf_counter() - started})
 
     def diverged(what: str) -> TrainingError:
         return TrainingError(f"training diverged in epoch {epoch}, step {step + 1}: {what} "
@@ -257,17 +267,21 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                     save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
                                                   "val_loss": val_loss})
                     saved = epoch
-                write_json(run_dir / "train_history.json", {"history": history, "best_val_accuracy": best[0],
-                                                            "wall_seconds": time.perf_counter() - started})
+                write_history("running")
             if out_of_time:
                 if rank == 0:
                     print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
                           "(the learning rate had annealed to 0 by then)", flush=True)
                 break
+    except TrainingError:
+        write_history("diverged")
+        raise
     except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM turned into Interrupted by the command line
+        write_history("interrupted")
         status = getattr(exc, "status", 130)
         how = "SIGTERM" if status == 143 else "Ctrl-C"
         raise Interrupted(f"training interrupted by {how} in epoch {epoch}; {kept()}.", status) from None
+    write_history("complete")
     if world > 1:
         torch.distributed.barrier()
     return ckpt

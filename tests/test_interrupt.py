@@ -1,5 +1,6 @@
 """Ctrl-C or SIGTERM during training: one line saying what was kept, the shell's status, no traceback."""
 
+import json
 import os
 import signal
 import subprocess
@@ -51,3 +52,21 @@ def test_a_signal_during_training_gives_one_line_and_keeps_the_checkpoint(signum
     payload = torch.load(tmp_path / "run" / "checkpoint.pt", weights_only=True)
     assert payload["meta"]["epoch"] >= 1
     assert not list((tmp_path / "run").glob(".*part*"))  # nothing half-written left behind
+    history = json.loads((tmp_path / "run" / "train_history.json").read_text())
+    assert history["status"] == "interrupted" and history["best_epoch"] == payload["meta"]["epoch"]
+
+
+def test_run_latest_passes_over_an_interrupted_run(tmp_path, monkeypatch, capsys):
+    from shapes.cli import _latest_run
+
+    monkeypatch.chdir(tmp_path)
+    for name, status in (("a", "complete"), ("b", "interrupted")):
+        run = tmp_path / "runs" / "train" / name
+        run.mkdir(parents=True)
+        (run / "checkpoint.pt").write_bytes(b"x")
+        (run / "train_history.json").write_text(json.dumps({"status": status, "history": []}))
+        os.utime(run / "checkpoint.pt", (1e9 + ord(name), 1e9 + ord(name)))  # b is the newer
+    assert Path(_latest_run("latest")) == Path("runs/train/a")
+    (tmp_path / "runs" / "train" / "a" / "checkpoint.pt").unlink()
+    assert main(["eval", "run=latest"]) == 2
+    assert "1 interrupted or diverged run(s) passed over" in capsys.readouterr().err

@@ -106,6 +106,7 @@ def test_a_run_diverging_later_keeps_the_last_good_checkpoint(tiny_data, tmp_pat
     assert payload["meta"]["epoch"] == 1
     assert all(torch.isfinite(v).all() for v in payload["state_dict"].values())
     assert math.isfinite(payload["meta"]["val_loss"])
+    assert json.loads((tmp_path / "train_history.json").read_text())["status"] == "diverged"
 
 
 @pytest.mark.parametrize("option,needle", [
