@@ -22,8 +22,10 @@ import torch
 from torch import nn
 
 from shapes.errors import ConfigError, InputError
+from shapes.geometry import SmoothNeighbours, knn_graph, radius_graph, smooth_graph
 
-__all__ = ["Backbone", "Classifier", "check_points", "check_normals", "masked_mean", "masked_max"]
+__all__ = ["Backbone", "Classifier", "check_points", "check_normals", "masked_mean", "masked_max", "neighbourhood",
+           "check_flag"]
 
 SYMMETRIES = ("E3", "SE3", "none")
 
@@ -68,6 +70,29 @@ def masked_max(x: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
 def masked_centroid(points: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
     """Centroid (B, 1, 3) of the real points; subtracting it makes any backbone translation invariant."""
     return masked_mean(points, mask).unsqueeze(1)
+
+
+def neighbourhood(points: torch.Tensor, k: int, mask: torch.Tensor, radius: float | None,
+                  smooth: bool) -> SmoothNeighbours:
+    """The neighbour graph every backbone aggregates over, with a weight per edge.
+
+    ``smooth=True``: :func:`shapes.geometry.smooth_graph`, the ``k`` nearest senders tapered to
+    weight 0 at the ``(k+1)``-th one's distance (and at ``radius``), so the weighted neighbourhood is
+    continuous in the points and blind to how tied distances were ordered. ``smooth=False``: the
+    plain kNN (or radius) graph with weight 1 on every valid slot, as before the option existed
+    (``scale`` is then NaN: there is none).
+    """
+    if smooth:
+        return smooth_graph(points, k, mask=mask, radius=radius)
+    nb = knn_graph(points, k, mask=mask) if radius is None else radius_graph(points, radius, k, mask=mask)
+    scale = points.new_full(points.shape[:2], float("nan"))
+    return SmoothNeighbours(nb.index, nb.valid, nb.valid.to(points.dtype), scale)
+
+
+def check_flag(value, backbone: str, option: str) -> None:
+    """ConfigError unless ``value`` is a bool (YAML ``true``/``false``), naming what was found."""
+    if not isinstance(value, bool):
+        raise ConfigError(f"{backbone} option '{option}' should be true or false, got {value!r}.")
 
 
 class Backbone(nn.Module):

@@ -45,6 +45,7 @@ __all__ = [
     "layer_paths",
     "coupling_matrix",
     "masked_softmax",
+    "weighted_softmax",
     "safe_norm",
     "EquivariantLinear",
     "EquivariantNorm",
@@ -181,6 +182,29 @@ def masked_softmax(logits: torch.Tensor, valid: torch.Tensor, dim: int) -> torch
     top = torch.where(torch.isfinite(top), top, torch.zeros_like(top))
     e = torch.exp(z - top)  # exactly 0 at invalid entries
     return e / e.sum(dim, keepdim=True).clamp_min(torch.finfo(e.dtype).tiny)
+
+
+def weighted_softmax(logits: torch.Tensor, weight: torch.Tensor, dim: int, own_weight: bool = True) -> torch.Tensor:
+    """Softmax over ``dim`` in which entry ``j`` counts ``weight_j >= 0`` times, faded out with the weights.
+
+    ``a_j = w_j exp(l_j) / sum_k w_k exp(l_k) * min(1, sum_k w_k)``: an entry of weight 0 takes no
+    part at all (neither in its own share nor in the others' normalisation), so an entry entering
+    with weight 0 changes nothing, and the result is continuous in the weights and the logits even
+    where every weight goes to 0 (the last factor, 1 unless the total weight is below 1, brings the
+    shares down to 0 with it instead of leaving them normalised). Entries of weight 0 get value and
+    gradient 0, never NaN; the maximum over the weighted entries is subtracted first for stability.
+
+    ``own_weight=False`` leaves out the leading ``w_j`` (0 still where ``w_j = 0``), for values that
+    already carry their weight: ``a_j v_j`` is then the same as with ``own_weight=True`` and ``v_j / w_j``.
+    """
+    positive = weight > 0
+    z = logits.masked_fill(~positive, -math.inf)
+    top = z.amax(dim, keepdim=True).detach()
+    top = torch.where(torch.isfinite(top), top, torch.zeros_like(top))
+    e = torch.exp(z - top)  # exactly 0 where the weight is 0
+    we = e * weight
+    scale = weight.sum(dim, keepdim=True).clamp(max=1.0) / we.sum(dim, keepdim=True).clamp_min(torch.finfo(e.dtype).tiny)
+    return (we if own_weight else e) * scale
 
 
 def safe_norm(x: torch.Tensor, dim: int = -1, eps: float = 1e-12) -> torch.Tensor:

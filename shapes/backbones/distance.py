@@ -13,10 +13,18 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
-from shapes.backbones._base import Backbone, check_points, masked_centroid, masked_max, masked_mean
+from shapes.backbones._base import (
+    Backbone,
+    check_flag,
+    check_points,
+    masked_centroid,
+    masked_max,
+    masked_mean,
+    neighbourhood,
+)
 from shapes.backbones._radial import GaussianBasis, cosine_cutoff
 from shapes.errors import ConfigError, InputError
-from shapes.geometry import gather_neighbours, knn_graph
+from shapes.geometry import gather_neighbours
 
 __all__ = ["DistanceBackbone", "DistanceConfig"]
 
@@ -29,6 +37,8 @@ class DistanceConfig:
     num_radial: int = 24  # Gaussians resolving distances in [0, cutoff]
     cutoff: float = 1.0  # in units of the RMS radius (clouds are normalised to 1); filters fade to 0 there
     centroid_radial: int = 16  # Gaussians of the distance to the centroid, the initial per-point feature
+    smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance: on a
+    # scan's lattice many neighbours tie, and a hard kNN set made the features depend on rounding (False: old graph)
 
 
 class Interaction(nn.Module):
@@ -47,7 +57,7 @@ class Interaction(nn.Module):
         self.norm = nn.LayerNorm(hidden)
 
     def forward(self, h, index, radial, weight):
-        # h (B, N, H); index (B, N, k); radial (B, N, k, H) shared filter features; weight (B, N, k) cutoff × valid
+        # h (B, N, H); index (B, N, k); radial (B, N, k, H) shared filter features; weight (B, N, k) cutoff × taper
         w = self.filter(radial) * weight.unsqueeze(-1)  # (B, N, k, H)
         msg = gather_neighbours(self.into(h), index) * w  # (B, N, k, H)
         agg = msg.sum(2) / weight.sum(2, keepdim=True).clamp_min(1e-6)  # (B, N, H)
@@ -72,6 +82,7 @@ class DistanceBackbone(Backbone):
                 raise ConfigError(f"distance needs {field} >= 1, got {getattr(c, field)}.")
         if not c.cutoff > 0:
             raise ConfigError(f"distance needs cutoff > 0, got {c.cutoff}.")
+        check_flag(c.smooth_neighbours, "distance", "smooth_neighbours")
         self.rbf = GaussianBasis(c.num_radial, c.cutoff)
         self.centroid_rbf = GaussianBasis(c.centroid_radial, 3.0)  # normalised parts lie within ~3 RMS radii
         self.embed = nn.Sequential(nn.Linear(c.centroid_radial, c.hidden), nn.SiLU(), nn.Linear(c.hidden, c.hidden))
@@ -86,10 +97,10 @@ class DistanceBackbone(Backbone):
         smallest = int(mask.sum(1).min())
         if c.k >= smallest:
             raise InputError(f"k = {c.k} neighbours needs clouds of at least {c.k + 1} points, got {smallest}.")
-        nb = knn_graph(points, c.k, mask=mask)
+        nb = neighbourhood(points, c.k, mask, None, c.smooth_neighbours)
         rel = gather_neighbours(points, nb.index) - points.unsqueeze(2)  # (B, N, k, 3)
         d = rel.square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N, k)
-        weight = cosine_cutoff(d, c.cutoff) * nb.valid.to(points.dtype)  # (B, N, k)
+        weight = cosine_cutoff(d, c.cutoff) * nb.weight  # (B, N, k): cutoff x taper (x valid)
         radial = self.radial(self.rbf(d))  # (B, N, k, H), computed once for all blocks
         r0 = (points - masked_centroid(points, mask)).square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N)
         h = self.embed(self.centroid_rbf(r0))  # (B, N, H)

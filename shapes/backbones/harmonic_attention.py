@@ -35,6 +35,11 @@ For receiver ``i`` and its neighbours ``j`` (kNN, or within ``radius`` capped at
     a_ij^h      = softmax_j( sum_t <q_i[t], k_ij[t]>_head h / sqrt(d_head) )   (invariant logits)
     out_i[t]    = W^O_t sum_j a_ij^{h(c)} v_ij[t]
 
+With ``smooth_neighbours`` (the default) the softmax counts each edge with its weight
+``w_ij`` = cosine cutoff x the neighbourhood taper of :func:`shapes.geometry.smooth_graph` (0 at the
+``(k+1)``-th neighbour's distance), ``a_ij ∝ w_ij exp(logit_ij)``, so a neighbour enters and leaves the
+attention with weight 0 and tied distances on a scan's lattice do not matter.
+
 ``R_P(d)`` is a per-path, per-input-channel radial weight from a small MLP on a Gaussian basis of
 ``d``, times a cosine cutoff; keys and values share it and differ by their channel mixings
 ``W^K_P``, ``W^V_P``. Keys exist only for output types the receiver has a query for (in the first
@@ -85,11 +90,13 @@ from torch import nn
 
 from shapes.backbones._base import (
     Backbone,
+    check_flag,
     check_normals,
     check_points,
     masked_centroid,
     masked_max,
     masked_mean,
+    neighbourhood,
 )
 from shapes.backbones._equivariant import (
     PARITY_MODES,
@@ -105,14 +112,13 @@ from shapes.backbones._equivariant import (
     parse_channels,
     point_invariants,
     safe_norm,
+    weighted_softmax,
 )
 from shapes.backbones._radial import GaussianBasis, cosine_cutoff
 from shapes.errors import ConfigError, InputError
 from shapes.geometry import (
     clebsch_gordan,
     gather_neighbours,
-    knn_graph,
-    radius_graph,
     relative_vectors,
     spherical_harmonics,
 )
@@ -142,6 +148,9 @@ class HarmonicAttentionConfig:
     normals: bool = False  # True: also take outward surface normals (B, N, 3); False keeps bare point clouds working
     edge_block: int = 16384  # edges per block of the fast path: bounds its temporaries; results do not depend on it
     context: bool = True  # the cloud's mean of every feature type joins each layer and the readout (global shape, bracket hand)
+    smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance (and at
+    # radius) and weight the attention by it: on a scan's lattice neighbours tie, and a hard kNN set let rounding
+    # pick which tied point counted (features moved by up to 0.5 under rotation); False: the old hard graph
 
     def __post_init__(self):
         self.l_max = _count(self.l_max, "l_max", 0)
@@ -176,6 +185,7 @@ class HarmonicAttentionConfig:
             self.radius = _positive(self.radius, "radius")
         if not isinstance(self.context, bool):
             raise ConfigError(f"context should be true or false, got {self.context!r}.")
+        check_flag(self.smooth_neighbours, "harmonic_attention", "smooth_neighbours")
 
 
 def _count(value, name: str, minimum: int) -> int:
@@ -206,7 +216,14 @@ class EdgeFrame(NamedTuple):
     rbf : (B, N, k, num_radial) float
         Gaussian basis of the edge lengths.
     envelope : (B, N, k) float
-        Cosine cutoff of the edge lengths, 0 on invalid slots.
+        Cosine cutoff of the edge lengths times ``taper``: every edge's weight in the attention.
+    taper : (B, N, k) float
+        Neighbourhood weight of each edge (:func:`shapes.geometry.smooth_graph`: 0 at the ``(k+1)``-th
+        neighbour's distance), or 1 on valid slots with ``smooth_neighbours: false``; 0 on invalid
+        slots. Per-neighbourhood statistics (descriptors, normal inputs) are means with these weights.
+    smooth : bool
+        Whether attention weights its softmax by ``envelope`` (smooth neighbourhoods) or takes the
+        softmax over the valid slots and multiplies by ``envelope`` afterwards (the old rule).
     harmonics : list of (B, N, k, 2l+1) float
         ``Y_l`` of the edge directions, ``l = 0..2 l_max`` (the reference path uses these).
     basis : dict l_in -> (B, N, k, 2 l_in + 1, W_l) float, or None
@@ -222,12 +239,14 @@ class EdgeFrame(NamedTuple):
     envelope: torch.Tensor
     harmonics: list
     basis: dict | None
+    taper: torch.Tensor
+    smooth: bool
 
     def receivers(self, block: slice) -> "EdgeFrame":
         """The edges of the receivers ``block`` (dim 1), for the fast path (harmonics left out)."""
         basis = None if self.basis is None else {l: b[:, block] for l, b in self.basis.items()}
         return EdgeFrame(self.index[:, block], self.valid[:, block], self.vectors[:, block], self.length[:, block],
-                         self.rbf[:, block], self.envelope[:, block], [], basis)
+                         self.rbf[:, block], self.envelope[:, block], [], basis, self.taper[:, block], self.smooth)
 
 
 NORMAL_SCALARS, NORMAL_VECTORS, NORMAL_PSEUDO = 5, 4, 3  # widths of the three parts of NormalInputs
@@ -291,11 +310,11 @@ def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tenso
     chi = (torch.linalg.cross(y, normals) * mn).sum(-1)  # (B, N): det[y, n, M n]
     cloud = masked_mean(chi, mask) * aniso  # (B,)
 
-    valid = edges.valid.to(y.dtype)[..., None]  # (B, N, k, 1)
+    valid = edges.taper.to(y.dtype)[..., None]  # (B, N, k, 1): neighbourhood weights, 0 on invalid slots
     count = valid.sum(-2).clamp_min(1.0)  # (B, N, 1)
     mean_nj = (gather_neighbours(normals, edges.index) * valid).sum(-2) / count  # (B, N, 3)
     mean_r = (edges.vectors * valid).sum(-2) / count  # (B, N, 3)
-    mean_length = edges.length.sum(-1) / count[..., 0]  # invalid slots have length 0
+    mean_length = (edges.length * valid[..., 0]).sum(-1) / count[..., 0]  # invalid slots have length 0
     scalars = torch.stack(
         [
             (normals * y).sum(-1) / safe_norm(y),
@@ -464,7 +483,7 @@ class HarmonicAttentionLayer(nn.Module):
             pulled = torch.cat(pulled, -1).flatten(-2)  # (B, N, H, C*W)
             logits = logits + u @ pulled.transpose(-1, -2)  # (B, N, k, H)
         logits = logits * (edges.envelope[..., None] * self.scale)
-        alpha = masked_softmax(logits, edges.valid[..., None], dim=2) * edges.envelope[..., None]  # (B, N, k, H)
+        alpha = self._weights(logits, edges)  # (B, N, k, H)
         out = {}
         for group, u in zip(self.groups, weighted):
             c_in = self.types_in[group.t_in]
@@ -476,6 +495,19 @@ class HarmonicAttentionLayer(nn.Module):
                 o = torch.einsum("bnhcm,hoc->bnhom", part, w).flatten(2, 3)  # (B, N, C_out, 2l_out+1)
                 out[t_out] = out[t_out] + o if t_out in out else o
         return out
+
+    @staticmethod
+    def _weights(logits: torch.Tensor, edges: EdgeFrame) -> torch.Tensor:
+        """Attention weights ``(B, N, k, H)`` from invariant logits; both paths use this rule.
+
+        Smooth neighbourhoods: a softmax in which every edge counts with its weight ``envelope``
+        (cutoff x taper), so an edge fading out at the ``(k+1)``-th neighbour's distance leaves the
+        normalisation as smoothly as its own share. Otherwise the old rule: softmax over the valid
+        slots, times the envelope.
+        """
+        if edges.smooth:
+            return weighted_softmax(logits, edges.envelope[..., None].expand_as(logits), dim=2)
+        return masked_softmax(logits, edges.valid[..., None], dim=2) * edges.envelope[..., None]
 
     # -- reference ---------------------------------------------------------------------------
 
@@ -515,10 +547,16 @@ class HarmonicAttentionLayer(nn.Module):
             c = self.types_in[t]
             qh = q[t].unflatten(2, (H, c // H)).unsqueeze(2)  # (B, N, 1, H, C/H, 2l+1)
             logits = logits + (qh * k_t.unflatten(3, (H, c // H))).sum((-1, -2))  # (B, N, k, H)
-        valid = edges.valid[..., None].expand(B, N, K, H)
-        any_valid = valid.any(2, keepdim=True)
-        alpha = torch.softmax((logits * self.scale).masked_fill(~(valid | ~any_valid), -math.inf), dim=2)
-        alpha = alpha * any_valid  # an all-invalid neighbourhood sends nothing
+        if edges.smooth:
+            # the values carry the envelope already (through the radial weights), so their shares leave
+            # out each edge's own weight: alpha_j v_j is then exactly the fast path's
+            envelope = edges.envelope[..., None].expand(B, N, K, H)
+            alpha = weighted_softmax(logits * self.scale, envelope, dim=2, own_weight=False)
+        else:
+            valid = edges.valid[..., None].expand(B, N, K, H)
+            any_valid = valid.any(2, keepdim=True)
+            alpha = torch.softmax((logits * self.scale).masked_fill(~(valid | ~any_valid), -math.inf), dim=2)
+            alpha = alpha * any_valid  # an all-invalid neighbourhood sends nothing
         out = {}
         for t, v in values.items():
             c = self.types_out[t]
@@ -615,14 +653,11 @@ class HarmonicAttentionBackbone(Backbone):
     def edge_frame(self, points: torch.Tensor, mask: torch.Tensor, reference: bool = False) -> EdgeFrame:
         """Neighbourhoods and the per-edge radial and angular bases, shared by every layer."""
         c = self.config
-        if c.radius is None:
-            nb = knn_graph(points, c.k, mask)
-        else:
-            nb = radius_graph(points, c.radius, c.k, mask)
+        nb = neighbourhood(points, c.k, mask, c.radius, c.smooth_neighbours)
         r = relative_vectors(points, nb.index)  # (B, N, k, 3), sender - receiver
         dist = safe_norm(r) * nb.valid  # (B, N, k); invalid slots are self-loops of length 0
         harmonics = spherical_harmonics(self.l_f_max, r)  # list of (B, N, k, 2l+1)
-        envelope = cosine_cutoff(dist, c.cutoff) * nb.valid
+        envelope = cosine_cutoff(dist, c.cutoff) * nb.weight  # (B, N, k): cutoff x taper (x valid)
         basis = None
         if not reference:
             y = torch.cat(harmonics, -1)  # (B, N, k, (l_f_max+1)^2)
@@ -630,7 +665,8 @@ class HarmonicAttentionBackbone(Backbone):
                 l: (y @ self._coupling_matrix(l, y.dtype, y.device)).unflatten(-1, (2 * l + 1, -1))  # (B, N, k, 2l+1, W)
                 for l in self.degrees
             }
-        return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis)
+        return EdgeFrame(nb.index, nb.valid, r, dist, self.rbf(dist), envelope, harmonics, basis, nb.weight,
+                         c.smooth_neighbours)
 
     def forward_features(self, points: torch.Tensor, mask: torch.Tensor | None = None,
                          normals: torch.Tensor | None = None, reference: bool = False) -> list:
@@ -698,13 +734,13 @@ class HarmonicAttentionBackbone(Backbone):
         flat, 1 for an isotropic blob). Smooth polynomials of ``M``, no eigen-decomposition, so
         the gradient is finite everywhere.
         """
-        valid = edges.valid.to(points.dtype)
+        valid = edges.taper.to(points.dtype)  # neighbourhood weights (1 or the taper), 0 on invalid slots
         count = valid.sum(-1).clamp_min(1.0)  # (B, N)
         r = edges.vectors * valid[..., None]  # (B, N, k, 3)
-        mean_length = edges.length.sum(-1) / count  # invalid slots have length 0
+        mean_length = (edges.length * valid).sum(-1) / count  # invalid slots have length 0
         # Floors far below any real edge (coordinates are in RMS radii) keep empty neighbourhoods finite.
         offset = safe_norm(r.sum(-2) / count[..., None]) / (mean_length + 1e-6)
-        moment = torch.einsum("bnki,bnkj->bnij", r, r) / count[..., None, None]  # (B, N, 3, 3)
+        moment = torch.einsum("bnki,bnkj->bnij", r, edges.vectors) / count[..., None, None]  # (B, N, 3, 3): weighted
         trace = moment.diagonal(dim1=-2, dim2=-1).sum(-1) + 1e-12  # (B, N)
         spread = safe_norm(moment.flatten(-2)) / trace
         # det as a triple product of rows: a polynomial, so its gradient is finite at singular M

@@ -32,9 +32,9 @@ import torch
 from torch import nn
 from torch.nn import functional as F
 
-from shapes.backbones._base import Backbone, check_normals, check_points, masked_max, masked_mean
+from shapes.backbones._base import Backbone, check_normals, check_points, masked_max, masked_mean, neighbourhood
 from shapes.errors import ConfigError, InputError
-from shapes.geometry import gather_neighbours, knn_graph, radius_graph, relative_vectors
+from shapes.geometry import gather_neighbours, relative_vectors
 
 __all__ = ["VectorGateBackbone", "VectorGateConfig", "PointFeatures"]
 
@@ -44,6 +44,12 @@ __all__ = ["VectorGateBackbone", "VectorGateConfig", "PointFeatures"]
 _RELATIVE_CUTOFF = 3.0
 # Added under square roots so that norms and unit vectors stay differentiable at zero length.
 _EPS = 1e-8
+# Floor of the lengths that cosines and normalised triple products divide by. The embedding's vectors
+# are in units of L (a few neighbour distances); where one vanishes by symmetry (the mean edge vector
+# inside a flat lattice patch) what is left is rounding, and dividing by a floor of 1e-4 L (_EPS)
+# multiplied it by ~1e4. 1e-3 L keeps that gain 10x lower (measured, float64, box lattice, handedness
+# off: features moved by 2e-12 under rotation, 2e-13 with this floor) and is far below real curvature.
+_DIRECTION_EPS = 1e-6
 
 
 @dataclasses.dataclass
@@ -59,6 +65,9 @@ class VectorGateConfig:
     handedness: bool = True  # keep cross/triple products so mirror twins can be told apart
     normals: bool = False  # also take unit outward surface normals (B, N, 3): they show the tilt of
     # thread flanks and helical teeth that a few hundred points cannot (False: bare points suffice)
+    smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance (and at
+    # radius): scans lie on a lattice, neighbours tie, and a hard kNN set let rounding pick which tied point
+    # counted (logits moved 4e-2 under rotation in float32); False: the old hard graph
 
 
 class PointFeatures(NamedTuple):
@@ -77,8 +86,10 @@ class PointFeatures(NamedTuple):
 class EdgeGeometry(NamedTuple):
     """What every layer needs about the graph, built once per forward pass and shared by all layers.
 
-    index (B, N, k) senders; mean (B, N, k) 1 / (number of valid neighbours) on valid edges, 0 on
-    missing or padded ones, so a sum over k is a masked mean; weight (B, N, k) ``mean`` times the
+    index (B, N, k) senders; mean (B, N, k) each edge's neighbourhood weight (the taper of
+    :func:`shapes.geometry.smooth_graph`, or 1 on valid edges with ``smooth_neighbours: false``) over
+    the receiver's total weight (floored at 1), 0 on missing or padded edges, so a sum over k is a
+    weighted mean; weight (B, N, k) ``mean`` times the
     smooth envelope; rel (B, N, k, 3) edge vectors sender - receiver in units of ``L``; inv_len
     (B, N, k, 1) 1 / length, floored; rbf (B, N, k, R) radial basis of the length; moment
     (B, 1, 3, 3) three times the cloud's second moment ``mean (x - c)(x - c)^T`` over its mean square
@@ -118,6 +129,11 @@ def vector_norm(v: torch.Tensor) -> torch.Tensor:
     return torch.sqrt((v * v).sum(-1) + _EPS)
 
 
+def _direction_norm(v: torch.Tensor) -> torch.Tensor:
+    """Length of each vector ``(..., C, 3) -> (...)`` floored at ``sqrt(_DIRECTION_EPS)``, for dividing by."""
+    return torch.sqrt((v * v).sum(-1) + _DIRECTION_EPS)
+
+
 def dot(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
     """Channel-wise inner product ``(..., C, 3) x (..., C, 3) -> (..., C)``; broadcasts."""
     return (a * b).sum(-1)
@@ -140,20 +156,17 @@ def edge_geometry(points: torch.Tensor, mask: torch.Tensor, config: VectorGateCo
     ``_RELATIVE_CUTOFF`` mean neighbour distances of each cloud. That mean is an invariant, so every
     symmetry is kept, and the same weights serve any point count and any unit of length.
     """
-    if config.radius is None:
-        graph = knn_graph(points, config.k, mask=mask)
-    else:
-        graph = radius_graph(points, config.radius, config.k, mask)
-    valid = (graph.valid & mask.unsqueeze(-1)).to(points.dtype)  # (B, N, k)
+    graph = neighbourhood(points, config.k, mask, config.radius, config.smooth_neighbours)
+    taper = graph.weight * mask.unsqueeze(-1)  # (B, N, k): taper (or 1) on valid edges, 0 elsewhere
     rel = relative_vectors(points, graph.index)  # (B, N, k, 3) sender - receiver; 0 on invalid slots
     dist = torch.sqrt((rel * rel).sum(-1))  # (B, N, k)
     if config.cutoff is None:
-        mean_dist = (dist * valid).sum((1, 2)) / valid.sum((1, 2)).clamp_min(1.0)  # (B,)
+        mean_dist = (dist * taper).sum((1, 2)) / taper.sum((1, 2)).clamp_min(1.0)  # (B,)
         unit_len = (_RELATIVE_CUTOFF * mean_dist).clamp_min(_EPS).reshape(-1, 1, 1)  # (B, 1, 1)
     else:
         unit_len = points.new_full((points.shape[0], 1, 1), float(config.cutoff))
     x = dist / unit_len  # (B, N, k) lengths in units of L
-    mean = valid / valid.sum(-1, keepdim=True).clamp_min(1.0)  # (B, N, k)
+    mean = taper / taper.sum(-1, keepdim=True).clamp_min(1.0)  # (B, N, k)
     return EdgeGeometry(
         index=graph.index,
         mean=mean,
@@ -200,28 +213,51 @@ class ChannelMix(nn.Module):
 
 
 class VectorNorm(nn.Module):
-    """Equivariant normalisation: divide vectors ``(..., C, 3)`` by their RMS length over channels."""
+    """Equivariant normalisation: divide vectors ``(..., C, 3)`` by their RMS length over channels.
+
+    With ``companion`` (the point's polar vectors, for pseudo-vectors) the RMS is floored by
+    ``OddNorm.FLOOR`` times the companion's mean square, for the reason given at :class:`OddNorm`:
+    on two mirror planes of a part every pseudo-vector is 0 by symmetry, and the plain ``_EPS`` floor
+    multiplied the rounding left there by up to 1e4.
+    """
 
     def __init__(self, channels: int):
         super().__init__()
         self.gain = nn.Parameter(torch.ones(channels))
 
-    def forward(self, v: torch.Tensor) -> torch.Tensor:
-        rms = torch.sqrt((v * v).sum(-1).mean(-1, keepdim=True) + _EPS)  # (..., 1)
-        return v * (self.gain / rms).unsqueeze(-1)
+    def forward(self, v: torch.Tensor, companion: torch.Tensor | None = None) -> torch.Tensor:
+        square = (v * v).sum(-1).mean(-1, keepdim=True) + _EPS  # (..., 1)
+        if companion is not None:
+            square = square + OddNorm.FLOOR * (companion * companion).sum(-1).mean(-1, keepdim=True)
+        return v * (self.gain / torch.sqrt(square)).unsqueeze(-1)
 
 
 class OddNorm(nn.Module):
-    """RMS normalisation of pseudo-scalars ``(..., C)``: no bias and no centring, so the sign flips."""
+    """RMS normalisation of pseudo-scalars ``(..., C)``: no bias and no centring, so the sign flips.
+
+    The RMS is floored by ``FLOOR`` times the mean square of the point's scalars ``s`` (the other
+    degree-0 quantities, invariant and even, so the sign of ``p`` still flips with the hand;
+    pseudo-vectors are floored by the polar vectors the same way, see :class:`VectorNorm`)::
+
+        p / sqrt(mean p^2 + FLOOR mean s^2 + 1e-6)
+
+    Why: at a point on a mirror plane of the part (a box, a cylinder, any mirror-symmetric patch) every
+    pseudo-scalar is 0 by symmetry and what is left is rounding. With only the absolute 1e-6 floor each
+    norm multiplied that rounding by up to 1000, and a network normalises them three times: on a box
+    lattice the float64 features moved by 1e-7 under rotation (measured). Floored against the scalars
+    the gain is at most ``FLOOR ** -0.5`` = 10 per norm relative to the scalar scale, as in the
+    harmonic backbone's EquivariantNorm.
+    """
+
+    FLOOR = 1e-2
 
     def __init__(self, channels: int):
         super().__init__()
         self.gain = nn.Parameter(torch.ones(channels))
 
-    def forward(self, p: torch.Tensor) -> torch.Tensor:
-        # a larger floor than for vectors: pseudo-scalars of nearly symmetric patches are ~0, and
-        # blowing their rounding noise up to unit size would only add noise.
-        return p * (self.gain / torch.sqrt((p * p).mean(-1, keepdim=True) + 1e-6))
+    def forward(self, p: torch.Tensor, s: torch.Tensor) -> torch.Tensor:
+        rms = torch.sqrt((p * p).mean(-1, keepdim=True) + self.FLOOR * (s * s).mean(-1, keepdim=True) + 1e-6)
+        return p * (self.gain / rms)
 
 
 class FeatureNorm(nn.Module):
@@ -239,12 +275,12 @@ class FeatureNorm(nn.Module):
     def forward(self, x: PointFeatures) -> PointFeatures:
         if not self.handed:
             return PointFeatures(self.s(x.s), self.v(x.v), None, None)
-        return PointFeatures(self.s(x.s), self.v(x.v), self.p(x.p), self.a(x.a))
+        return PointFeatures(self.s(x.s), self.v(x.v), self.p(x.p, x.s), self.a(x.a, x.v))
 
 
 def _det(a: torch.Tensor, b: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
     """Normalised triple product ``det[a, b, c] / (|a| |b| |c|)`` of ``(..., 3)`` vectors -> (...)."""
-    n = vector_norm(torch.stack([a, b, c], -2)).prod(-1)  # (...)
+    n = _direction_norm(torch.stack([a, b, c], -2)).prod(-1)  # (...)
     return dot(cross(a, b), c) / n
 
 
@@ -321,14 +357,15 @@ class Embedding(nn.Module):
         c4, c5 = c1 @ M, c3 @ M  # (B, N, 3) each
         c = torch.stack([c1, c2, c3, c4], -2)  # (B, N, 4, 3): channel, xyz
         n = vector_norm(c)  # (B, N, 4)
-        cos = dot(c, c.roll(-1, -2)) / (n * n.roll(-1, -1))  # (B, N, 4): c1.c2, c2.c3, c3.c4, c4.c1
+        nd = _direction_norm(c)  # (B, N, 4): the lengths that divide, floored higher (see _DIRECTION_EPS)
+        cos = dot(c, c.roll(-1, -2)) / (nd * nd.roll(-1, -1))  # (B, N, 4): c1.c2, c2.c3, c3.c4, c4.c1
         dist = torch.sqrt((rel * rel).sum(-1, keepdim=True) + _EPS)  # (B, N, k, 1)
         mean_d = (dist * mean).sum(2)  # (B, N, 1)
         spread = torch.sqrt((((dist - mean_d.unsqueeze(2)) ** 2) * mean).sum(2) + _EPS)  # (B, N, 1)
         scalars = [n, cos, mean_d, spread]
         if self.normals:
             u = normals  # (B, N, 3) unit outward normals
-            scalars.append(dot(u.unsqueeze(-2), c[..., :2, :]) / n[..., :2])  # (B, N, 2): n.c1, n.c2
+            scalars.append(dot(u.unsqueeze(-2), c[..., :2, :]) / nd[..., :2])  # (B, N, 2): n.c1, n.c2
             c = torch.cat([c, u.unsqueeze(-2)], -2)  # (B, N, 5, 3)
         s = self.scalar(torch.cat(scalars, -1))  # (B, N, S)
         v = self.vector(c)  # (B, N, V, 3)
@@ -336,7 +373,7 @@ class Embedding(nn.Module):
             return PointFeatures(s, v, None, None)
         c = c[..., :4, :]  # the four geometric vectors; the normal's odd terms follow below
         axial = cross(c, c.roll(-1, -2))  # (B, N, 4, 3): c1 x c2, c2 x c3, c3 x c4, c4 x c1
-        triple = dot(axial, c.roll(-2, -2)) / (n * n.roll(-1, -1) * n.roll(-2, -1))  # (B, N, 4)
+        triple = dot(axial, c.roll(-2, -2)) / (nd * nd.roll(-1, -1) * nd.roll(-2, -1))  # (B, N, 4)
         # det[y, C y, M C y]: along a helix C y follows the local tangent t and this is about
         # det[y, t, axis] (t . axis), whose sign is the hand of the helix (springs, helical teeth)
         helix = torch.stack([_det(c2, c3, c5), _det(c2, c3, c5 @ M)], -1)  # (B, N, 2)
@@ -522,7 +559,7 @@ def _check_config(c: VectorGateConfig) -> None:
             isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or math.isinf(value)
         ):
             raise ConfigError(f"vector_gate option '{field}' should be a positive number or None, got {value!r}.")
-    for field in ("handedness", "normals"):
+    for field in ("handedness", "normals", "smooth_neighbours"):
         if not isinstance(getattr(c, field), bool):
             raise ConfigError(f"vector_gate option '{field}' should be true or false, got {getattr(c, field)!r}.")
 

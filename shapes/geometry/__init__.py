@@ -8,10 +8,13 @@ from shapes.geometry._coupling import clebsch_gordan, complex_clebsch_gordan, re
 from shapes.geometry._harmonics import L_MAX, harmonics_dim, spherical_harmonics
 from shapes.geometry._neighbours import (
     Neighbours,
+    SmoothNeighbours,
     gather_neighbours,
     knn_graph,
+    neighbour_taper,
     radius_graph,
     relative_vectors,
+    smooth_graph,
 )
 from shapes.geometry._poses import (
     POSE_REGIMES,
@@ -63,6 +66,9 @@ __all__ = [
     "Neighbours",
     "knn_graph",
     "radius_graph",
+    "SmoothNeighbours",
+    "smooth_graph",
+    "neighbour_taper",
     "gather_neighbours",
     "relative_vectors",
 ]

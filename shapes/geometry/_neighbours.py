@@ -15,11 +15,26 @@ import torch
 from shapes.errors import InputError
 from shapes.geometry._checks import check_count, shape_of
 
-__all__ = ["Neighbours", "knn_graph", "radius_graph", "gather_neighbours", "relative_vectors"]
+__all__ = [
+    "Neighbours",
+    "SmoothNeighbours",
+    "knn_graph",
+    "radius_graph",
+    "smooth_graph",
+    "neighbour_taper",
+    "gather_neighbours",
+    "relative_vectors",
+]
 
 
 # Distances held per block (elements); see _graph.
 _BLOCK_ELEMENTS = 1 << 20
+
+# The taper of smooth_graph is 1 up to this fraction of the squared scale and falls to 0 at 1 (see
+# neighbour_taper). On a surface the squared distance of the j-th neighbour grows about like j, so
+# about the nearer half of the k neighbours keep full weight and the taper spans the outer half:
+# the soft neighbour count is about 0.75 k, the weight's slope stays below pi per unit of (d / s)^2.
+TAPER_START = 0.5
 
 
 class Neighbours(NamedTuple):
@@ -187,6 +202,101 @@ def radius_graph(
     if not radius > 0:  # also rejects NaN
         raise InputError(f"radius should be a positive number, got {radius!r} instead.")
     return _graph(points, k, mask, include_self, chunk_size, radius)
+
+
+class SmoothNeighbours(NamedTuple):
+    """A k-nearest-neighbour graph whose edges carry weights continuous in the points.
+
+    Attributes
+    ----------
+    index, valid : (B, N, k) long, bool
+        As in :class:`Neighbours`: the ``k`` nearest senders, nearest first.
+    weight : (B, N, k) float
+        ``neighbour_taper(|r_ij|^2 / s_i^2)`` on valid slots, 0 on the others. Differentiable in the
+        points (it is built from them, not from the detached search).
+    scale : (B, N) float
+        ``s_i``: the distance to the ``(k+1)``-th nearest sender (at most ``radius`` if one was
+        given); ``inf`` where there is no such sender (a cloud of ``k + 1`` points or fewer, where
+        every other point is a neighbour and nothing can enter or leave).
+    """
+
+    index: torch.Tensor
+    valid: torch.Tensor
+    weight: torch.Tensor
+    scale: torch.Tensor
+
+
+def neighbour_taper(u: torch.Tensor) -> torch.Tensor:
+    """Weight of a neighbour at squared relative distance ``u = (d / s)^2``.
+
+    1 for ``u <= TAPER_START``, then ``(1 + cos(pi t)) / 2`` with ``t = (u - TAPER_START) / (1 - TAPER_START)``,
+    and 0 for ``u >= 1``: once differentiable, with zero slope at both joins, so a neighbour reaches the
+    scale ``s`` (where it may swap places with the ``(k+1)``-th) with weight 0 and slope 0.
+    """
+    t = ((u - TAPER_START) / (1.0 - TAPER_START)).clamp(0.0, 1.0)
+    return 0.5 * (torch.cos(math.pi * t) + 1.0)
+
+
+def smooth_graph(
+    points: torch.Tensor,
+    k: int,
+    mask: torch.Tensor | None = None,
+    radius: float | None = None,
+    chunk_size: int = 1024,
+) -> SmoothNeighbours:
+    """The ``k`` nearest senders of every point, weighted so that the neighbourhood is continuous.
+
+    A plain kNN set jumps when the ``k``-th and ``(k+1)``-th neighbours swap, and on points that
+    lie on a lattice (a scan) many neighbours tie, so which tied point is kept depends on rounding.
+    Here ``k + 1`` neighbours are found, the distance ``s_i`` to the ``(k+1)``-th is the receiver's
+    scale (an order statistic: continuous in the points, whichever tied point holds the slot), and
+    each of the ``k`` nearest gets the weight ``neighbour_taper(d_ij^2 / s_i^2)``. Every sender at
+    distance ``s_i`` or more has weight 0, so a neighbour enters and leaves with weight 0, and the
+    weighted neighbourhood does not depend on how ties were broken. With ``radius``, the scale is
+    ``min(s_i, radius)``: a sender crossing the radius fades out the same way.
+
+    Parameters
+    ----------
+    points : (B, N, 3) float
+    k : int
+        Neighbours per receiver, ``>= 1``.
+    mask : (B, N) bool, optional
+        True for real points (padding is never a sender and has no valid slot).
+    radius : float, optional
+        Largest scale; ``None`` for a pure kNN neighbourhood.
+    chunk_size : int
+        As in :func:`knn_graph`.
+
+    Returns
+    -------
+    SmoothNeighbours
+        Self-edges are never included. Memory ``O(B N k)``.
+    """
+    k = check_count(k, "k", 1)
+    if radius is not None:
+        try:
+            radius = float(radius)
+        except (TypeError, ValueError):
+            radius = math.nan
+        if not radius > 0:  # also rejects NaN
+            raise InputError(f"radius should be a positive number, got {radius!r} instead.")
+    nb = knn_graph(points, k + 1, mask=mask, chunk_size=chunk_size)
+    rel = gather_neighbours(points, nb.index) - points[:, :, None, :]  # (B, N, k+1, 3)
+    sq = rel.square().sum(-1)  # (B, N, k+1); squared, so the gradient is finite at duplicate points
+    scale_sq = torch.where(nb.valid[..., k], sq[..., k], torch.full_like(sq[..., k], math.inf))  # (B, N)
+    if radius is not None:
+        scale_sq = scale_sq.clamp(max=radius * radius)
+    valid = nb.valid[..., :k]
+    if radius is not None:
+        valid = valid & (sq[..., :k] <= radius * radius)
+    # s = 0 (k + 2 coincident points): the neighbours all sit at the scale, so they get weight 0
+    positive = scale_sq[..., None] > 0
+    u = sq[..., :k] / torch.where(positive, scale_sq[..., None], torch.ones_like(scale_sq[..., None]))
+    u = torch.where(positive, u, torch.ones_like(u))
+    weight = torch.where(valid, neighbour_taper(u), torch.zeros_like(u))
+    receiver = torch.arange(points.shape[1], device=points.device)[None, :, None]
+    index = torch.where(valid, nb.index[..., :k], receiver)
+    return SmoothNeighbours(index, valid, weight, scale_sq.sqrt())
 
 
 def gather_neighbours(x: torch.Tensor, index: torch.Tensor) -> torch.Tensor:
