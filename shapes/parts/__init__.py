@@ -12,7 +12,9 @@ from shapes.parts._catalog import (
 from shapes.parts._families import FAMILIES, HANDED_FAMILIES, build_part
 from shapes.parts._mesh import MIRROR, mirror_mesh
 from shapes.parts._ply import write_ply
-from shapes.parts._twins import DEFAULT_TOL, Alignment, align_rigid, find_mirror_twins, is_chiral, is_rotation_of
+from shapes.parts._twins import (
+    DEFAULT_TOL, Alignment, TwinReport, align_rigid, check_twins, find_mirror_twins, is_chiral, is_rotation_of,
+)
 
 __all__ = [
     "FAMILIES",
@@ -32,5 +34,7 @@ __all__ = [
     "is_rotation_of",
     "is_chiral",
     "find_mirror_twins",
+    "check_twins",
+    "TwinReport",
     "DEFAULT_TOL",
 ]
