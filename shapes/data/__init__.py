@@ -42,6 +42,7 @@ from shapes.data._scanfile import (
 )
 from shapes.data._sample import farthest_point_subsample, normalise, sample_surface
 from shapes.data._scan import random_direction, ray_backend, scan_view
+from shapes.data._scan import CAMERA_PLACEMENTS, SCAN_LABELS, ScannerSettings, ScanResult, scan_part
 from shapes.data._split import SPLITS, split_groups
 
 __all__ = [
@@ -74,6 +75,11 @@ __all__ = [
     "scan_view",
     "random_direction",
     "ray_backend",
+    "ScannerSettings",
+    "ScanResult",
+    "scan_part",
+    "SCAN_LABELS",
+    "CAMERA_PLACEMENTS",
     "SPLITS",
     "split_groups",
     "build_dataset",
