@@ -19,7 +19,8 @@ inversion acts on each factor separately. From a proper input the output is prop
 tracked as their own types); mode ``"even"`` keeps only the paths between proper types, so no
 pseudo-quantity ever appears and every invariant is also reflection-invariant.
 
-Conventions are DESIGN.md's: ``x' = R x``, real orthonormal harmonics with ``m`` at ``m + l``,
+Conventions as in docs/design.md ("Rotations", "Spherical harmonics", "Wigner-D", "Parity and
+handedness"): ``x' = R x``, real orthonormal harmonics with ``m`` at ``m + l``,
 ``Y_l(R v) = D_l(R) Y_l(v)``.
 """
 

