@@ -40,7 +40,7 @@ def make(name, options, dtype=torch.float64):
 
 
 def rotate(points, R):
-    return points @ R.transpose(-1, -2)  # DESIGN.md: x' = R x
+    return points @ R.transpose(-1, -2)  # convention: docs/design.md, "Rotations": x' = R x
 
 
 def rel_change(a, b):
@@ -115,7 +115,7 @@ def test_padding_is_ignored(name, options, symmetry, cloud):
 
 @pytest.mark.parametrize("name,options,symmetry", CASES, ids=IDS)
 def test_translation_invariant(name, options, symmetry, cloud):
-    # reference: DESIGN.md, every backbone sees centroid-relative or neighbour-relative coordinates
+    # convention: docs/design.md, "Translations": every backbone sees centroid-relative or neighbour-relative coordinates
     net = make(name, options)
     shift = torch.tensor([[[3.0, -7.0, 11.0]]], dtype=torch.float64)
     assert rel_change(net(cloud), net(cloud + shift)) <= 1e-9

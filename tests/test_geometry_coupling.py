@@ -6,6 +6,7 @@ import math
 import numpy as np
 import pytest
 import torch
+from scipy.special import sph_harm_y
 from sympy import Rational, sqrt
 from sympy.physics.quantum.cg import CG
 from sympy.physics.wigner import clebsch_gordan as sympy_clebsch_gordan
@@ -48,7 +49,7 @@ def test_equivariance(l1, l2, l3, poses):
     D1, D2, D3 = (wigner_d(l, R) for l in (l1, l2, l3))
     lhs = couple(C, (D1 @ a[..., None])[..., 0], (D2 @ b[..., None])[..., 0])
     rhs = (D3 @ couple(C, a, b)[..., None])[..., 0]
-    # definition (DESIGN.md): C(D a x D b) = D C(a x b)
+    # definition: docs/design.md, "Coupling coefficients": C(D a x D b) = D C(a x b)
     assert (lhs - rhs).abs().max() <= 1e-10
     # reflections: a path with odd l1 + l2 + l3 is a pseudo-quantity and flips sign
     E1, E2, E3 = (wigner_d(l, M) for l in (l1, l2, l3))
@@ -110,9 +111,13 @@ def test_one_one_one_is_the_cross_product():
     a = torch.randn(20, 3, generator=torch_generator(4), dtype=F64)
     b = torch.randn(20, 3, generator=torch_generator(5), dtype=F64)
     c = couple(clebsch_gordan(1, 1, 1), a[:, perm], b[:, perm])
-    # closed form: 1 x 1 -> 1 is the cross product (documented constant +1/sqrt 2)
+    # closed form: 1 x 1 -> 1 is the cross product; its constant is |<1 1; 1 0 | 1 1>| = 1/sqrt 2
+    # (reference: sympy.physics.quantum.cg.CG), the sign being the one fixed in the module docstring
+    assert abs(CG(1, 1, 1, 0, 1, 1).doit()) == 1 / sqrt(2)
     assert torch.allclose(c, torch.linalg.cross(a, b)[:, perm] / math.sqrt(2), atol=1e-14)
-    # closed form: 1 x 1 -> 0 is the dot product (constant -1/sqrt 3)
+    # closed form: 1 x 1 -> 0 is the dot product; the z z term is the m = 0 entry, real in both bases:
+    # <1 0; 1 0 | 0 0> = -1/sqrt 3 (reference: sympy.physics.quantum.cg.CG)
+    assert CG(1, 0, 1, 0, 0, 0).doit() == -1 / sqrt(3)
     s = couple(clebsch_gordan(1, 1, 0), a[:, perm], b[:, perm])[:, 0]
     assert torch.allclose(s, -(a * b).sum(-1) / math.sqrt(3), atol=1e-14)
     # closed form: a x a = 0, while the symmetric 1 x 1 -> 2 part of (a, a) is not zero
@@ -121,13 +126,14 @@ def test_one_one_one_is_the_cross_product():
 
 
 def test_complex_values_against_sympy():
-    # source: FACTS.md, <1 0; 1 0 | 2 0> = sqrt(2/3); checked with sympy CG
+    # reference: sympy.physics.quantum.cg.CG(1, 0, 1, 0, 2, 0).doit() = sqrt(2/3)
     assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0), math.sqrt(2 / 3), rel_tol=1e-15)
     assert CG(1, 0, 1, 0, 2, 0).doit() == sqrt(Rational(2, 3))
-    # source: FACTS.md, <1 1; 1 -1 | 1 0> = 1/sqrt 2
+    # reference: sympy.physics.quantum.cg.CG(1, 1, 1, -1, 1, 0).doit() = 1/sqrt 2
     assert math.isclose(complex_clebsch_gordan(1, 1, 1, -1, 1, 0), 1 / math.sqrt(2), rel_tol=1e-15)
-    # source: FACTS.md, 3j (1 1 2; 0 0 0) = sqrt(30)/15 (sympy.physics.wigner.wigner_3j);
-    # 3j = (-1)^(j1 - j2 - m3) / sqrt(2 j3 + 1) <j1 m1 j2 m2 | j3 -m3>
+    assert CG(1, 1, 1, -1, 1, 0).doit() == 1 / sqrt(2)
+    # reference: sympy.physics.wigner.wigner_3j(1, 1, 2, 0, 0, 0) = sqrt(30)/15, and the closed-form
+    # relation 3j = (-1)^(j1 - j2 - m3) / sqrt(2 j3 + 1) <j1 m1 j2 m2 | j3 -m3>
     assert wigner_3j(1, 1, 2, 0, 0, 0) == sqrt(30) / 15
     assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0) / math.sqrt(5), math.sqrt(30) / 15, rel_tol=1e-15)
     # reference: sympy.physics.wigner.clebsch_gordan over every entry with j <= 3
@@ -144,11 +150,13 @@ def test_real_basis_change_is_unitary_and_gives_the_design_basis():
     for l in range(5):
         U = real_basis_change(l)
         assert np.abs(U @ U.conj().T - np.eye(2 * l + 1)).max() < 1e-15
-    # DESIGN.md: Y_{1,-1} = sqrt 2 (-1)^-1 Im Y_1^1 ; with Y_1^{+-1} = -+ sqrt(3/8pi) sin(theta) e^{+-i phi}
+    # convention: docs/design.md, "Spherical harmonics": Y_{1,-1} = sqrt 2 (-1)^-1 Im Y_1^1;
+    # reference: scipy.special.sph_harm_y(1, +-1) = -+ sqrt(3/8pi) sin(theta) e^{+-i phi} (Condon-Shortley), checked below
     U1 = real_basis_change(1)
     c = math.sqrt(3 / (8 * math.pi))
     theta, phi = 0.7, 1.9
     y_complex = np.array([c * math.sin(theta) * np.exp(-1j * phi), math.sqrt(3 / (4 * math.pi)) * math.cos(theta), -c * math.sin(theta) * np.exp(1j * phi)])
+    assert np.abs(y_complex - np.array([sph_harm_y(1, m, theta, phi) for m in (-1, 0, 1)])).max() < 1e-15
     yzx = math.sqrt(3 / (4 * math.pi)) * np.array([math.sin(theta) * math.sin(phi), math.cos(theta), math.sin(theta) * math.cos(phi)])
     assert np.abs(U1 @ y_complex - yzx).max() < 1e-15
 

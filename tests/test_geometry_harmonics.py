@@ -14,7 +14,8 @@ from shapes.seeding import torch_generator
 
 
 def real_reference(l, v):
-    """DESIGN.md real basis built from scipy's complex harmonics (Condon-Shortley phase included)."""
+    """The real basis of docs/design.md, "Spherical harmonics", built from scipy's complex harmonics
+    (Condon-Shortley phase included)."""
     r = np.linalg.norm(v, axis=-1)
     theta = np.arccos(np.clip(v[:, 2] / r, -1, 1))
     phi = np.arctan2(v[:, 1], v[:, 0])
@@ -41,7 +42,7 @@ def directions():
 def test_matches_scipy_up_to_l6(directions):
     Y = spherical_harmonics(6, torch.from_numpy(directions))
     for l in range(7):
-        # reference: scipy.special.sph_harm_y carried into the DESIGN.md real basis
+        # reference: scipy.special.sph_harm_y carried into the real basis (docs/design.md, "Spherical harmonics")
         assert np.abs(Y[l].numpy() - real_reference(l, directions)).max() <= 1e-12, l
 
 
@@ -56,11 +57,18 @@ def test_degree_one_and_two_tables(directions):
     v = directions
     x, y, z = (v / np.linalg.norm(v, axis=1, keepdims=True)).T
     Y = spherical_harmonics(2, torch.from_numpy(v))
-    # source: DESIGN.md, degree 1 = sqrt(3/4pi) (y, z, x)/r; sph_harm_y(1,0) = sqrt(3/4pi) cos theta (FACTS.md)
+    # convention: docs/design.md, "Spherical harmonics": degree 1 = sqrt(3/4pi) (y, z, x)/r.
+    # reference: scipy.special.sph_harm_y(1, 0, theta, phi) = sqrt(3/4pi) cos theta, checked here too
     assert np.abs(Y[1].numpy() - math.sqrt(3 / (4 * math.pi)) * np.stack([y, z, x], -1)).max() < 1e-14
-    # source: FACTS.md degree-2 table of real harmonics
+    assert np.allclose(sph_harm_y(1, 0, np.arccos(z), np.arctan2(y, x)).real, math.sqrt(3 / (4 * math.pi)) * z, atol=1e-14)
+    # source: the standard table of real spherical harmonics (Wikipedia, "Table of spherical harmonics",
+    # real harmonics, l = 2), on the unit sphere:
+    #   Y_2,-2 = 1/2 sqrt(15/pi) x y      Y_2,-1 = 1/2 sqrt(15/pi) y z      Y_2,0 = 1/4 sqrt(5/pi) (3 z^2 - 1)
+    #   Y_2,1  = 1/2 sqrt(15/pi) x z      Y_2,2  = 1/4 sqrt(15/pi) (x^2 - y^2)
     c = 0.5 * math.sqrt(15 / math.pi)
     table = np.stack([c * x * y, c * y * z, 0.25 * math.sqrt(5 / math.pi) * (3 * z * z - 1), c * x * z, 0.5 * c * (x * x - y * y)], -1)
+    # the table is re-checked against scipy.special.sph_harm_y in the real basis, so it rests on two references
+    assert np.abs(table - real_reference(2, v)).max() < 1e-13
     assert np.abs(Y[2].numpy() - table).max() < 1e-14
     # constant degree 0: 1/sqrt(4 pi)
     assert np.allclose(Y[0].numpy(), 1 / math.sqrt(4 * math.pi))
@@ -69,7 +77,7 @@ def test_degree_one_and_two_tables(directions):
 def test_addition_theorem(directions):
     Y = spherical_harmonics(L_MAX, torch.from_numpy(directions))
     for l, y in enumerate(Y):
-        # source: FACTS.md addition theorem (Unsold): sum_m Y_lm^2 = (2l+1)/(4 pi)
+        # source: Unsold's theorem (the addition theorem at equal arguments): sum_m Y_lm(v)^2 = (2l+1)/(4 pi)
         assert torch.allclose((y * y).sum(-1), torch.full((len(directions),), (2 * l + 1) / (4 * math.pi), dtype=torch.float64), atol=1e-12)
 
 
@@ -84,7 +92,7 @@ def test_orthonormal_on_quadrature_grid():
     w = (weights[:, None] * np.full(n_phi, 2 * np.pi / n_phi)[None, :]).reshape(-1)
     Y = torch.cat(spherical_harmonics(L_MAX, torch.from_numpy(pts)), -1).numpy()
     gram = Y.T @ (w[:, None] * Y)
-    # source: FACTS.md orthonormality, int Y_lm Y_l'm' dOmega = delta
+    # closed form: orthonormality of the spherical harmonics, int Y_lm Y_l'm' dOmega = delta_ll' delta_mm'
     assert np.abs(gram - np.eye(gram.shape[0])).max() < 1e-12
 
 
@@ -92,7 +100,8 @@ def test_parity_and_degree_one_equivariance():
     v = torch.randn(300, 3, generator=torch_generator(0), dtype=torch.float64)
     Y, Yneg = spherical_harmonics(5, v), spherical_harmonics(5, -v)
     for l in range(6):
-        # source: DESIGN.md parity, Y_l(-v) = (-1)^l Y_l(v)
+        # closed form: Y_l is a homogeneous polynomial of degree l in v/|v|, so Y_l(-v) = (-1)^l Y_l(v)
+        # (docs/design.md, "Parity and handedness")
         assert torch.allclose(Yneg[l], (-1) ** l * Y[l], atol=1e-13)
     # degree 1 rotates as R permuted to (y, z, x): Y_1(R v) = P R P^T Y_1(v)
     R = random_rotations(1, torch_generator(1), dtype=torch.float64)[0]
@@ -173,7 +182,7 @@ def test_equivariance_with_wigner_d():
     for l in range(7):
         D = wigner_d(l, R)
         for i in range(3):
-            # definition (DESIGN.md): Y_l(R v) = D_l(R) Y_l(v)
+            # definition: docs/design.md, "Wigner-D": Y_l(R v) = D_l(R) Y_l(v)
             moved = spherical_harmonics(l, v @ R[i].T)[l]
             assert (moved - spherical_harmonics(l, v)[l] @ D[i].T).abs().max() < 1e-12
             if l >= 1:  # and the harmonics do change: the check can fail

@@ -35,7 +35,7 @@ def test_harmonics_consistency_and_homomorphism(l, rotations):
     assert D.shape == (6, 2 * l + 1, 2 * l + 1)
     Y = spherical_harmonics(l, v)[l]
     for i in range(6):
-        # definition (DESIGN.md): Y_l(R v) = D_l(R) Y_l(v)
+        # definition: docs/design.md, "Wigner-D": Y_l(R v) = D_l(R) Y_l(v)
         Yr = spherical_harmonics(l, v @ rotations[i].T)[l]
         assert (Yr - Y @ D[i].T).abs().max() <= 1e-10
     # definition: D(R1 R2) = D(R1) D(R2), and D(R^T) = D(R)^T
@@ -53,7 +53,7 @@ def test_harmonics_consistency_and_homomorphism(l, rotations):
 
 def test_degree_one_is_R_in_yzx_order(rotations):
     perm = [1, 2, 0]
-    # source: DESIGN.md, degree 1 = sqrt(3/4pi) (y, z, x)/r, so D_1 = R permuted to (y, z, x)
+    # convention: docs/design.md, "Spherical harmonics": degree 1 = sqrt(3/4pi) (y, z, x)/r, so D_1 = R permuted to (y, z, x)
     assert torch.equal(wigner_d(1, rotations), rotations[:, perm][:, :, perm])
     assert torch.equal(wigner_d(0, rotations), torch.ones(6, 1, 1, dtype=F64))
 
@@ -63,7 +63,8 @@ def test_identity_and_inversion():
     for l in range(L_MAX + 1):
         eye = torch.eye(2 * l + 1, dtype=F64)
         assert (wigner_d(l, eye3) - eye).abs().max() < 1e-13
-        # parity (DESIGN.md): Y_l(-v) = (-1)^l Y_l(v), so D_l(-I) = (-1)^l I
+        # closed form: Y_l(-v) = (-1)^l Y_l(v) (degree-l polynomial; tested against scipy in test_geometry_harmonics),
+        # so D_l(-I) = (-1)^l I (docs/design.md, "Wigner-D")
         assert (wigner_d(l, -eye3) - (-1) ** l * eye).abs().max() < 1e-13
 
 

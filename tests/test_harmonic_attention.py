@@ -27,7 +27,7 @@ def make(dtype=torch.float64, seed=0, **options):
 
 
 def rotate(points, R):
-    return points @ R.transpose(-1, -2)  # DESIGN.md: x' = R x
+    return points @ R.transpose(-1, -2)  # convention: docs/design.md, "Rotations": x' = R x
 
 
 def rel(a, b):
@@ -48,7 +48,10 @@ def random_normals(b=1, n=64, seed=17, dtype=torch.float64):
 
 
 def helix_cloud(n=64, dtype=torch.float64):
-    """A right-hand helix (FACTS.md: (r cos t, r sin t, p t / 2 pi)) with an off-axis lump at one end.
+    """A right-hand helix (r cos t, r sin t, p t / 2 pi) with an off-axis lump at one end.
+
+    Common practice: the right hand turns counter-clockwise as it rises, seen from +z (docs/design.md,
+    "Parity and handedness").
 
     Chiral: no rotation maps it onto its mirror image, so an SE3 model may (and should) tell them apart.
     """
@@ -62,8 +65,9 @@ def helix_cloud(n=64, dtype=torch.float64):
 def transform_features(features: dict, Q: torch.Tensor) -> dict:
     """Expected features after the orthogonal map ``Q (B, 3, 3)``: type (l, p) goes to ``s_p D_l(R) x``.
 
-    ``R = Q`` and ``s = 1`` for a rotation; ``R = -Q`` and ``s = p`` for an improper map (DESIGN.md:
-    Y_l(R v) = D_l(R) Y_l(v), and inversion multiplies a parity-p feature by p).
+    ``R = Q`` and ``s = 1`` for a rotation; ``R = -Q`` and ``s = p`` for an improper map (docs/design.md,
+    "Wigner-D" and "Parity and handedness": Y_l(R v) = D_l(R) Y_l(v), and inversion multiplies a parity-p
+    feature by p).
     """
     improper = torch.det(Q) < 0  # (B,)
     R = torch.where(improper[:, None, None], -Q, Q)
@@ -80,7 +84,7 @@ def transform_features(features: dict, Q: torch.Tensor) -> dict:
 
 @pytest.mark.parametrize("dtype,tol", [(torch.float64, 1e-9), (torch.float32, 1e-4)])
 def test_features_invariant_under_50_rotations_and_translations(dtype, tol):
-    # reference: DESIGN.md equivariance claim; Haar rotations from shapes.geometry (KS-tested there)
+    # claim: docs/design.md, "Backbone contract" and "Translations"; Haar rotations from shapes.geometry (KS-tested there)
     net = make(dtype)
     cloud = random_cloud(dtype=dtype)
     R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
@@ -96,7 +100,8 @@ def test_features_invariant_under_50_rotations_and_translations(dtype, tol):
 @pytest.mark.parametrize("options", [{}, {"l_max": 3, "channels": {0: 8, 1: 4, 2: 2, 3: 2}}, {"parity": "even"}],
                          ids=["default", "l3", "even"])
 def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
-    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule of DESIGN.md
+    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule: docs/design.md,
+    # "Parity and handedness"
     net = make(**options)
     cloud = random_cloud(n=40)
     gen = torch.Generator().manual_seed(4)
@@ -114,7 +119,7 @@ def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
 
 
 def test_full_parity_builds_pseudo_quantities_and_even_parity_does_not():
-    # reference: DESIGN.md parity rule; a pseudo-scalar flips sign under a reflection (checked above)
+    # convention: docs/design.md, "Parity and handedness"; a pseudo-scalar flips sign under a reflection (checked above)
     full = make()
     assert full.symmetry == "SE3"
     assert (0, -1) in full.types_out and (1, 1) in full.types_out  # pseudo-scalar, pseudovector
@@ -130,7 +135,8 @@ def test_full_parity_builds_pseudo_quantities_and_even_parity_does_not():
 
 
 def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
-    # reference: FACTS.md helix handedness (a helix is chiral); DESIGN.md parity rule
+    # closed form: a helix with a lump is chiral (no rotation maps it onto its mirror image);
+    # parity rule: docs/design.md, "Parity and handedness"
     cloud = helix_cloud()
     mirror = rotate(cloud, reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64)))
     turned = rotate(mirror, random_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64))
@@ -240,7 +246,7 @@ def test_fast_path_in_blocks_of_receivers_equals_one_piece_with_gradients(block)
 
 
 def test_context_reaches_past_the_neighbourhood_and_context_off_stays_local():
-    # reference: DESIGN.md receptive field; without context a layer only gathers from its k neighbours
+    # convention: docs/design.md, "Neighbourhoods and reach"; without context a layer only gathers from its k neighbours
     cloud = random_cloud(n=48, seed=21)
     first = 0
     near = torch.cdist(cloud[0], cloud[0])[first].argsort()  # nearest first
@@ -263,7 +269,7 @@ def test_context_reaches_past_the_neighbourhood_and_context_off_stays_local():
 
 
 def test_padding_changes_nothing_for_the_real_points():
-    # reference: DESIGN.md mask convention (True = real point)
+    # convention: docs/design.md, "Tensor shapes": mask True = real point
     net = make()
     cloud = random_cloud(b=2, n=40)
     junk = torch.cat([torch.full((2, 6, 3), 1e3, dtype=torch.float64), torch.zeros(2, 6, 3, dtype=torch.float64)], 1)
@@ -312,7 +318,7 @@ def test_every_parameter_of_the_default_network_gets_a_gradient():
 
 
 def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
-    # reference: YAML/Hydra deliver mapping keys as strings or ints (DESIGN.md: no mini-language)
+    # reference: YAML/Hydra deliver mapping keys as strings or ints (docs/design.md, "Options": no mini-language)
     from hydra.utils import instantiate
     from omegaconf import OmegaConf
 
@@ -392,7 +398,7 @@ def turn(points, normals, Q):
 
 @pytest.mark.parametrize("parity", ["full", "even"])
 def test_normals_features_invariant_under_50_rotations_and_translations(parity):
-    # reference: DESIGN.md equivariance claim; closed form: normals turn as n -> R n and ignore translations
+    # claim: docs/design.md, "Backbone contract"; closed form: normals turn as n -> R n and ignore translations
     net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(), random_normals()
     R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
@@ -407,7 +413,8 @@ def test_normals_features_invariant_under_50_rotations_and_translations(parity):
 @pytest.mark.parametrize("improper", [False, True], ids=["rotation", "improper"])
 @pytest.mark.parametrize("parity", ["full", "even"])
 def test_normals_every_layer_transforms_with_wigner_d_and_parity(parity, improper):
-    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule of DESIGN.md;
+    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule: docs/design.md,
+    # "Parity and handedness";
     # closed form: an outward normal is a polar vector, n -> Q n
     net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(n=40), random_normals(n=40)
@@ -467,7 +474,7 @@ def test_normal_inputs_match_numpy_and_transform_by_type():
 
 
 def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
-    # reference: FACTS.md helix handedness (a thread is chiral, its mirror image the other hand);
+    # common practice: a thread is chiral, its mirror image is the other hand (docs/design.md, "Parity and handedness");
     # closed form: an outward normal is a polar vector, n -> Q n under the reflection too
     cloud, normals = threaded_cloud()
     S = reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64))
@@ -483,7 +490,7 @@ def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
 
 
 def test_padding_with_junk_normals_changes_nothing_and_every_parameter_learns():
-    # reference: DESIGN.md mask convention (True = real point); common practice: no dead parameters
+    # convention: docs/design.md, "Tensor shapes": mask True = real point; common practice: no dead parameters
     net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(b=2, n=40), random_normals(b=2, n=40)
     padded = torch.cat([cloud, torch.full((2, 6, 3), 1e3, dtype=torch.float64)], 1)

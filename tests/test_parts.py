@@ -29,6 +29,32 @@ def polygon_factor(n: int) -> float:
     return n * math.sin(2.0 * math.pi / n) / (2.0 * math.pi)
 
 
+def tooth_thickness_at(mesh: trimesh.Trimesh, teeth: int, radius: float, z: float) -> np.ndarray:
+    """Arc thickness of each tooth at ``radius`` on the section of a gear (axis +z, tooth 0 on +x) at height ``z``.
+
+    The section's edges are cut with the circle of that radius; each crossing belongs to the tooth whose
+    centre (angle 2 pi k / teeth) is nearest, and a tooth's thickness is the arc between its two crossings.
+    """
+    segments = trimesh.intersections.mesh_plane(mesh, [0.0, 0.0, 1.0], [0.0, 0.0, z])[:, :, :2]  # (n, 2, 2)
+    a, step = segments[:, 0], segments[:, 1] - segments[:, 0]
+    # |a + t step| = radius for t in [0, 1]: a quadratic in t
+    qa, qb, qc = (step * step).sum(1), 2.0 * (a * step).sum(1), (a * a).sum(1) - radius * radius
+    disc = qb * qb - 4.0 * qa * qc
+    angles = []
+    for root in (-1.0, 1.0):
+        t = (-qb + root * np.sqrt(np.clip(disc, 0.0, None))) / (2.0 * qa)
+        hit = (disc >= 0.0) & (t >= 0.0) & (t <= 1.0)
+        p = a[hit] + t[hit, None] * step[hit]
+        angles.append(np.arctan2(p[:, 1], p[:, 0]))
+    angles = np.unique(np.round(np.concatenate(angles), 10))  # a crossing at a shared vertex counts once
+    pitch_angle = 2.0 * math.pi / teeth
+    tooth = np.round(angles / pitch_angle)
+    offset = angles - tooth * pitch_angle  # angle from the nearest tooth centre
+    tooth = tooth.astype(int) % teeth
+    assert np.bincount(tooth, minlength=teeth).tolist() == [2] * teeth, "two flank crossings per tooth"
+    return np.array([radius * np.ptp(offset[tooth == k]) for k in range(teeth)])
+
+
 def helicity(mesh: trimesh.Trimesh) -> float:
     """Area-weighted mean of n_theta * n_z over the surface, a pseudo-scalar.
 
@@ -86,11 +112,12 @@ def test_same_parameters_give_identical_bytes():
 
 # ---------------------------------------------------------------- ISO 4032 hex nuts
 
-NUTS = [  # source: ISO 4032 (FACTS.md): s across flats, m height, e_min across corners; ISO 261 pitch
+NUTS = [  # source: ISO 4032, table of dimensions: s across flats, m height, e_min across corners (grade A);
+    # pitch from ISO 261, table of diameter/pitch combinations (coarse)
     ("M6", 10.0, 5.2, 11.05, 6.0, 1.0),
     ("M8", 13.0, 6.8, 14.38, 8.0, 1.25),
     ("M10", 16.0, 8.4, 17.77, 10.0, 1.5),
-    # from memory (ISO 4032 and ISO 261, not in FACTS.md); e_min is re-checked by the hexagon
+    # from memory (ISO 4032 and ISO 261); e_min is re-checked by the hexagon
     # itself: e = 2 s / sqrt 3 must exceed it
     ("M5", 8.0, 4.7, 8.79, 5.0, 0.8),
     ("M12", 18.0, 10.8, 20.03, 12.0, 1.75),
@@ -131,7 +158,7 @@ def test_hex_nut_volume_is_hexagon_minus_bore(segments):
 
 # ---------------------------------------------------------------- ISO 7089 washers, bushings
 
-WASHERS = [  # source: ISO 7089 (FACTS.md): d1 / d2 / h
+WASHERS = [  # source: ISO 7089, table of dimensions (normal series): d1 / d2 / h
     ("M6", 6.4, 12.0, 1.6),
     ("M8", 8.4, 16.0, 1.6),
     ("M10", 10.5, 20.0, 2.0),
@@ -192,7 +219,7 @@ def test_bushing_volume_plain_and_flanged():
 
 # ---------------------------------------------------------------- ISO 15 bearings
 
-BEARINGS = [  # source: ISO 15 (FACTS.md): bore / OD / width
+BEARINGS = [  # source: ISO 15, boundary dimensions of diameter series 0 and 2: bore / OD / width
     ("6000", 10.0, 26.0, 8.0),
     ("6001", 12.0, 28.0, 8.0),
     ("6202", 15.0, 35.0, 11.0),
@@ -244,19 +271,31 @@ def test_spur_gear_tip_root_teeth_and_involute(module, teeth):
     expect = math.pi / (2.0 * teeth) + _inv(alpha) - np.array([_inv(math.acos(rb / x)) for x in rr])
     assert len(pts) >= 4 * teeth
     np.testing.assert_allclose(rel, expect, atol=1e-5)
-    # tooth thickness at the pitch circle is half the circular pitch: 2 psi(d/2) r = pi m / 2
-    assert 2.0 * (math.pi / (2.0 * teeth)) * d / 2.0 == pytest.approx(math.pi * module / 2.0)
+    # source: ISO 53, the basic rack's tooth thickness on its datum line is half the pitch, pi m / 2; a gear
+    # cut by it without profile shift has that arc thickness on its reference (pitch) circle. Measured on a
+    # section of the mesh at mid-width: every tooth's arc between its two flanks at r = d/2.
+    thickness = tooth_thickness_at(mesh, teeth, d / 2.0, width / 2.0)
+    half_pitch = math.pi * module / 2.0
+    assert len(thickness) == teeth
+    # The flanks are polylines through points on the involute (checked above), and a chord of the
+    # convex flank lies inside the tooth: the mesh's tooth is never thicker than the exact one, and
+    # with five points per flank at most about 1% thinner (0.3-0.9% for these gears).
+    assert (thickness <= half_pitch + 1e-6).all()
+    assert (thickness >= half_pitch * (1.0 - 0.015)).all()
 
 
 @pytest.mark.parametrize("hand,sign", [("right", 1.0), ("left", -1.0)])
 def test_helical_gear_tip_diameter_and_hand(hand, sign):
     m_n, z, beta, width = 1.5, 24, 20.0, 12.0
     mesh = build_part("helical_gear", module=m_n, teeth=z, helix_deg=beta, face_width=width, bore_d=10.0, hand=hand)
-    d = z * m_n / math.cos(math.radians(beta))  # transverse pitch diameter (ISO 53 rack in the normal plane)
+    # source: ISO 21771 (cylindrical involute gears, geometry): reference diameter d = z m_n / cos(beta);
+    # tip diameter d + 2 h_aP with the addendum h_aP = m_n of the ISO 53 basic rack, taken in the normal section
+    d = z * m_n / math.cos(math.radians(beta))
     r = radius_xy(mesh)
     assert 2.0 * r.max() == pytest.approx(d + 2.0 * m_n, abs=1e-3)
-    # teeth turn counter-clockwise going up for a right-hand gear (FACTS.md helix convention):
-    # tip points at the top face are the bottom ones turned by width * tan(beta) / r_pitch
+    # common practice: a right-hand gear's teeth turn counter-clockwise going up, seen from +z.
+    # closed form: a helix of angle beta on the reference cylinder (radius d/2) turns by
+    # width * tan(beta) / (d/2) over the width, so tip points at the top face are the bottom ones turned by that
     tips = r > d / 2.0 + 0.9 * m_n
     v = mesh.vertices[tips]
     bottom, top = v[np.abs(v[:, 2]) < 1e-6], v[np.abs(v[:, 2] - width) < 1e-6]
@@ -271,7 +310,7 @@ def test_helical_gear_tip_diameter_and_hand(hand, sign):
 # ---------------------------------------------------------------- ISO 68-1 / ISO 261 threads
 
 
-THREADS = [  # source: ISO 261 coarse pitch (FACTS.md)
+THREADS = [  # source: ISO 261, table of diameter/pitch combinations: coarse pitch
     ("M6", 6.0, 1.0, 24),
     ("M8", 8.0, 1.25, 24),
     ("M10", 10.0, 1.5, 24),
@@ -317,13 +356,17 @@ def test_spring_hand_and_size(per_turn, ground):
     kw = dict(wire_d=1.6, mean_d=12.0, coils=6, pitch=4.0, ground=ground, per_turn=per_turn)
     right = build_part("compression_spring", hand="right", **kw)
     left = build_part("compression_spring", hand="left", **kw)
-    assert 2.0 * radius_xy(right).max() == pytest.approx(12.0 + 1.6, abs=0.01)  # outer diameter D + d
-    assert 2.0 * radius_xy(right).min() == pytest.approx(12.0 - 1.6, abs=0.05)  # inner diameter D - d
+    # source: EN 13906-1 symbols (from memory): mean coil diameter D, wire diameter d, outside diameter
+    # D_e = D + d, inside diameter D_i = D - d; closed form too: a round wire of diameter d centred on the
+    # circle of diameter D. The inside is looser: the wire's polygonal section cuts the inner corners.
+    assert 2.0 * radius_xy(right).max() == pytest.approx(12.0 + 1.6, abs=0.01)  # outside diameter D + d
+    assert 2.0 * radius_xy(right).min() == pytest.approx(12.0 - 1.6, abs=0.05)  # inside diameter D - d
     if ground:
         assert right.vertices[:, 2].min() == pytest.approx(0.0, abs=1e-6)  # ground end sits on z = 0
     else:  # the round wire rests on z = 0 (a polygonal section: its lowest vertex a little above)
         assert 0.0 <= right.vertices[:, 2].min() < 0.05 * 1.6
-    assert helicity(right) < -0.01 and helicity(left) > 0.01  # FACTS.md: right hand turns CCW rising
+    # common practice: the right hand turns counter-clockwise rising, seen from +z (docs/design.md, "Parity and handedness")
+    assert helicity(right) < -0.01 and helicity(left) > 0.01
     for family in ("spur_gear", "hex_nut", "v_pulley", "bolted_flange"):  # achiral parts: no helicity
         assert abs(helicity(build_part(family))) < 1e-3
 

@@ -137,7 +137,8 @@ def test_an_invariant_backbone_gives_the_same_answer_in_any_pose_and_mirror_imag
     np.save(tmp_path / "cloud.npy", cloud)
     np.save(tmp_path / "cloud_mirror.npy", cloud * [1.0, -1.0, 1.0])
     rows = {r["file"]: r for r in predict_files(tiny["e3"], tmp_path, poses=3, seed=2)["results"]}
-    # reference: DESIGN.md, a distance-only network is invariant to rotations, reflections, translations
+    # closed form: distances between points do not change under rotations, reflections and translations,
+    # so a distance-only network (symmetry E3, docs/design.md "Backbone contract") gives the same answer
     for a, b in (("gear.ply", "gear_turned.ply"), ("cloud.npy", "cloud_mirror.npy")):
         pa, pb = (np.array(list(rows[f]["probabilities"].values())) for f in (a, b))
         np.testing.assert_allclose(pa, pb, atol=1e-5)
@@ -153,7 +154,8 @@ def test_a_handed_backbone_keeps_its_answer_in_any_pose_but_not_in_the_mirror(ti
     np.savez(tmp_path / "a_mirror.npz", points=points @ flip, normals=normals @ flip)
     rows = {r["file"]: np.array(list(r["probabilities"].values()))
             for r in predict_files(tiny["se3"], tmp_path, poses=2, seed=0)["results"]}
-    # reference: DESIGN.md parity, triple products change sign under a reflection (SE3 backbone)
+    # closed form: det[Q a, Q b, Q c] = det(Q) det[a, b, c], so triple products change sign under a reflection
+    # (SE3 backbone; docs/design.md, "Parity and handedness")
     np.testing.assert_allclose(rows["a.npz"], rows["a_turned.npz"], atol=1e-5)
     assert np.abs(rows["a.npz"] - rows["a_mirror.npz"]).max() > 1e-4
 

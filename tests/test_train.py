@@ -78,9 +78,14 @@ def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
     chosen = torch.tensor([True, True, True, False])
     x, y = reflect_to_twins(points, labels, twin_of, chosen)
     assert [classes[i] for i in y] == ["stud_lh", "bracket_right", "hex_nut", "spring_rh"]
-    # a reflection: determinant -1, and twice is the identity (closed form: diag(-1, 1, 1))
+    # what the code produced is a reflection: the linear map fitted from each chosen cloud to its output
+    # (least squares over its 10 points) is orthogonal with determinant -1 (closed form: an
+    # orientation-reversing isometry), and it is the mirror in the plane x = 0 that the docstring names
+    for i in range(3):
+        fitted = torch.linalg.lstsq(points[i], x[i]).solution.T  # x[i] = points[i] @ fitted.T
+        torch.testing.assert_close(fitted.T @ fitted, torch.eye(3, dtype=torch.float64), rtol=0, atol=1e-12)
+        assert abs(float(torch.linalg.det(fitted)) + 1.0) < 1e-12
     reflection = torch.diag(torch.tensor([-1.0, 1.0, 1.0], dtype=torch.float64))
-    assert torch.linalg.det(reflection) == -1
     torch.testing.assert_close(x[:3], points[:3] @ reflection.T, rtol=0, atol=0)
     torch.testing.assert_close(x[3], points[3], rtol=0, atol=0)
     x2, y2 = reflect_to_twins(x, y, twin_of, chosen)

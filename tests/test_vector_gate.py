@@ -34,13 +34,13 @@ def householder(normal, dtype):
 
 
 def improper(n, dtype, seed=0):
-    """Reflections followed by Haar rotations (DESIGN.md: a random improper pose), det = -1."""
+    """Reflections followed by Haar rotations (a random improper pose, docs/design.md "Random poses"), det = -1."""
     mirror = householder([0.3, -0.5, 0.8], dtype)
     return rotations(n, dtype, seed) @ mirror
 
 
 def transform(points, Q, t=None):
-    out = points @ Q.transpose(-1, -2)  # DESIGN.md: x' = Q x on column vectors
+    out = points @ Q.transpose(-1, -2)  # convention: docs/design.md, "Rotations": x' = Q x on column vectors
     return out if t is None else out + t
 
 
@@ -57,7 +57,8 @@ def cloud(n=64, dtype=torch.float64, seed=3, batch=1):
 def helix(n=64, handed=+1, dtype=torch.float64, seed=5):
     """Points on a helix (r cos t, r sin t, p t / 2 pi): right-hand for handed=+1.
 
-    # source: FACTS.md, helix handedness (common practice); handed=-1 is its mirror image z -> -z.
+    # common practice: a right-hand helix turns counter-clockwise as it rises, seen from +z (docs/design.md,
+    # "Parity and handedness"); handed=-1 is its mirror image z -> -z.
     Random parameters and a little jitter avoid exact ties between neighbour distances.
     """
     rng = np.random.default_rng(seed)
@@ -75,7 +76,7 @@ def helix(n=64, handed=+1, dtype=torch.float64, seed=5):
 @pytest.mark.parametrize("dtype", [torch.float64, torch.float32])
 @pytest.mark.parametrize("handedness", [True, False])
 def test_features_invariant_under_50_rotations_and_translations(dtype, handedness):
-    # reference: DESIGN.md equivariance (rotation x' = R x, translation invariance); R from scipy
+    # claim: docs/design.md, "Rotations" (x' = R x) and "Translations"; R from scipy
     model = make(dtype, handedness=handedness)
     x = cloud(dtype=dtype)
     R = rotations(50, dtype, seed=1)
@@ -92,7 +93,7 @@ def test_features_invariant_under_50_rotations_and_translations(dtype, handednes
 
 @pytest.mark.parametrize("dtype", [torch.float64, torch.float32])
 def test_vector_channels_rotate_with_the_input_at_every_layer(dtype):
-    # reference: DESIGN.md equivariance: v(R x) = R v(x), scalars unchanged; R from scipy
+    # closed form: vector channels rotate as the points, v(R x) = R v(x), scalars unchanged (module docstring); R from scipy
     model = make(dtype)
     x = cloud(dtype=dtype)
     R = rotations(5, dtype, seed=6)
@@ -110,7 +111,7 @@ def test_vector_channels_rotate_with_the_input_at_every_layer(dtype):
 
 
 def test_radius_graph_variant_is_invariant_too():
-    # reference: DESIGN.md equivariance; R from scipy
+    # claim: docs/design.md, "Rotations" and "Translations" (the radius graph too); R from scipy
     model = make(radius=1.5, cutoff=1.5, k=12)
     x = cloud()
     R = rotations(10, torch.float64, seed=8)
@@ -125,8 +126,9 @@ def test_radius_graph_variant_is_invariant_too():
 
 
 def test_mirror_twins_differ_with_handedness_at_initialisation():
-    # reference: FACTS.md, an E(3)-invariant model cannot separate a chiral object from its mirror
-    # image (ChIRo, Adams et al. 2022); a model that keeps triple products can.
+    # closed form: if f(Q x) = f(x) for every orthogonal Q, the reflection gives f(mirror) = f(part), so an
+    # E(3)-invariant model cannot separate a chiral object from its mirror image; a model that keeps
+    # triple products (det[Q a, Q b, Q c] = det(Q) det[a, b, c]) can.
     model = make()
     right, left = helix(handed=+1), helix(handed=-1)
     with torch.no_grad():
@@ -138,7 +140,7 @@ def test_mirror_twins_differ_with_handedness_at_initialisation():
 
 
 def test_mirror_twins_agree_without_handedness():
-    # reference: FACTS.md, invariance to reflections hides handedness (ChIRo, Adams et al. 2022)
+    # closed form: f(Q x) = f(x) for every orthogonal Q, reflections included, gives f(mirror) = f(part)
     model = make(handedness=False)
     assert model.symmetry == "E3"
     with torch.no_grad():
@@ -152,7 +154,7 @@ def test_mirror_twins_agree_without_handedness():
 
 @pytest.mark.parametrize("handedness, should_change", [(True, True), (False, False)])
 def test_features_under_50_improper_maps(handedness, should_change):
-    # reference: DESIGN.md parity; improper maps = Householder reflection (closed form) x scipy rotation
+    # convention: docs/design.md, "Parity and handedness"; improper maps = Householder reflection (closed form) x scipy rotation
     model = make(handedness=handedness)
     x = cloud()
     Q = improper(50, torch.float64, seed=10)
@@ -164,7 +166,7 @@ def test_features_under_50_improper_maps(handedness, should_change):
 
 
 def test_pseudo_channels_pick_up_the_determinant_under_reflection():
-    # reference: DESIGN.md parity: a cross product is a pseudo-vector, p -> det(Q) p, a -> det(Q) Q a;
+    # closed form: (Q a) x (Q b) = det(Q) Q (a x b), so a cross product is a pseudo-vector, p -> det(Q) p, a -> det(Q) Q a;
     # Q = Householder reflection (closed form) x scipy rotation, det(Q) = -1
     model = make()
     x = cloud()
@@ -211,7 +213,7 @@ def test_smooth_cutoff_values():
 
 @pytest.mark.parametrize("handedness", [True, False])
 def test_padded_junk_points_do_not_change_real_features(handedness):
-    # reference: DESIGN.md backbone contract: mask (B, N) marks real points, padding is ignored
+    # convention: docs/design.md, "Tensor shapes": mask (B, N) is True at real points, padding is ignored
     model = make(handedness=handedness)
     a, b = cloud(n=40, seed=13), cloud(n=64, seed=14)
     with torch.no_grad():
@@ -318,7 +320,8 @@ def helicoid(n=96, handed=+1, dtype=torch.float64, seed=7):
 
     # closed form: the normal of the level set F = z - handed * p * theta / (2 pi) is grad F
     # = e_z - handed * p / (2 pi r) e_theta, taken as handed * grad F so that handed=-1 is exactly
-    # the mirror image z -> -z of handed=+1, normals included (FACTS.md, helix handedness, common practice).
+    # the mirror image z -> -z of handed=+1, normals included (common practice: the right hand turns
+    # counter-clockwise rising, seen from +z).
     """
     rng = np.random.default_rng(seed)
     t = rng.uniform(0.0, 4.0 * np.pi, n)
@@ -371,7 +374,8 @@ def test_with_normals_channels_transform_at_every_layer():
 
 
 def test_helicoid_hands_differ_with_normals_and_agree_without_handedness():
-    # reference: FACTS.md, an E(3)-invariant model cannot separate a chiral object from its mirror image
+    # closed form: f(Q x) = f(x) for every orthogonal Q, reflections included, gives f(mirror) = f(part):
+    # an E(3)-invariant model cannot separate a chiral object from its mirror image
     right, n_right = helicoid(handed=+1)
     left, n_left = helicoid(handed=-1)  # exact mirror z -> -z, normals mirrored with their surface
     mirror = torch.diag(torch.tensor([1.0, 1.0, -1.0], dtype=torch.float64))
