@@ -63,6 +63,7 @@ def main(argv=None) -> int:
     parser.add_argument("--seed", type=int, default=7)
     parser.add_argument("--poses", type=int, default=8, help="predict.poses")
     parser.add_argument("--out", default=None)
+    parser.add_argument("--no-clean", action="store_true", help="predict without the scan clean-up")
     args = parser.parse_args(argv)
 
     ckpt = find_checkpoint(args.run)
@@ -75,9 +76,15 @@ def main(argv=None) -> int:
         t0 = time.perf_counter()
         truth = write_scans(meta, catalog, folder, args.scans, args.points, args.seed)
         t1 = time.perf_counter()
-        result = predict_files(ckpt, folder, poses=args.poses, seed=args.seed)
+        clean = {"stray_points": False, "support_plane": False, "cluster": False} if args.no_clean else None
+        result = predict_files(ckpt, folder, poses=args.poses, seed=args.seed, clean=clean)
         t2 = time.perf_counter()
     rows = {r["file"]: r for r in result["results"]}
+    errors = {n: r["error"] for n, r in rows.items() if "error" in r}
+    if errors:  # a scan the reader refused counts as a miss
+        print(f"{len(errors)} scan(s) refused, e.g. {next(iter(errors.items()))}")
+        for n in errors:
+            rows[n] = {"top": {"class": "(refused)"}, "known": False}
     handed = meta["handed"]
     table = {}
     for condition in ("any", "mirrored"):
@@ -86,13 +93,15 @@ def main(argv=None) -> int:
         hand = [rows[n]["top"]["class"] == truth[n][1] for n in names if handed[truth[n][2]]]
         known = [rows[n]["known"] for n in names]
         misses = sorted(f"{truth[n][2]}->{rows[n]['top']['class']}" for n in names if rows[n]["top"]["class"] != truth[n][1])
+        removed = [sum(step["removed"] for step in rows[n].get("cleanup", [])) / args.points for n in names]
         table[condition] = {"scans": len(names), "accuracy": float(np.mean(right)),
+                            "cleanup_removed_share": {"mean": float(np.mean(removed)), "max": float(np.max(removed))},
                             "handed_accuracy": float(np.mean(hand)) if hand else None,
                             "known_share": float(np.mean(known)), "misses": misses}
     out = {"run": str(ckpt.parent), "backbone": cmeta["backbone"]["name"], "data": str(data),
            "scans_per_instance_and_condition": args.scans, "points_per_scan": args.points, "seed": args.seed,
            "scanner": "shapes.data.scan_view: one orthographic view from a random direction, no noise",
-           "file_format": "bare x y z rows in mm, no normals", "predict_poses": args.poses,
+           "file_format": "bare x y z rows in mm, no normals", "predict_poses": args.poses, "clean_up": not args.no_clean,
            "seconds": {"scanning": t1 - t0, "predict": t2 - t1}, "conditions": table}
     path = Path(args.out) if args.out else RESULTS / f"accuracy_scans_{out['backbone']}.json"
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -100,7 +109,9 @@ def main(argv=None) -> int:
     for condition, m in table.items():
         hand = "-" if m["handed_accuracy"] is None else f"{100 * m['handed_accuracy']:.1f}%"
         print(f"{out['backbone']:>20} {condition:>9}: {100 * m['accuracy']:5.1f}% of {m['scans']} scans, "
-              f"handed {hand}, known {100 * m['known_share']:.0f}%; misses {m['misses'][:8]}")
+              f"handed {hand}, known {100 * m['known_share']:.0f}%, clean-up removed "
+              f"{100 * m['cleanup_removed_share']['mean']:.1f}% (max {100 * m['cleanup_removed_share']['max']:.0f}%); "
+              f"misses {m['misses'][:8]}")
     print(f"wrote {path}")
     return 0
 

@@ -123,6 +123,7 @@ RULES = {
     "predict.units": lambda n, v: check.choice(n, v, ("mm", "m", "in")),
     "predict.normals": lambda n, v: check.choice(n, v, ("auto", "file", "estimated")),
     "predict.viewpoint": _viewpoint,
+    "predict.orientation": lambda n, v: check.optional(check.choice, n, v, options=("single-view", "propagate")),
     "predict.batch_size": _positive_int,
     "predict.threads": _threads,
     "predict.clean.stray_k": _positive_int,

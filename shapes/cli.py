@@ -270,7 +270,7 @@ def _run_predict(cfg) -> None:
     result = predict_files(_latest_run(cfg.run), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
                            calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
                            out=p.out, units=p.units, clean=_plain(p.clean), normals=p.normals,
-                           viewpoint=_plain(p.viewpoint))
+                           viewpoint=_plain(p.viewpoint), orientation=p.orientation)
     print(format_table(result))
     print(f"wrote {p.out}")
     if result["failed"]:  # every other file was classified; the status tells a script some were not

@@ -202,7 +202,7 @@ def test_point_files_are_thinned_to_the_training_count_and_keep_their_normals(ti
     assert rows[0]["source"] == "points, 500 thinned to 64 with normals"
     cleaned = predict_files(tiny["se3"], tmp_path / "with_normals.npz", poses=2)["results"][0]
     removed = sum(step["removed"] for step in cleaned["cleanup"])
-    assert [step["step"] for step in cleaned["cleanup"]] == ["stray points", "support plane", "largest cluster"]
+    assert [step["step"] for step in cleaned["cleanup"]] == ["stray points"]  # the only step on by default
     assert cleaned["source"] == (f"points, 500, {removed} removed by clean-up, thinned to 64 with normals"
                                  if removed else "points, 500 thinned to 64 with normals")
     # a PLY vertex list with nx ny nz (the PLY format's normal properties), written by hand
@@ -220,19 +220,32 @@ def test_a_bare_xyz_file_gets_estimated_normals_for_a_backbone_that_takes_them(t
     sphere /= np.linalg.norm(sphere, axis=1, keepdims=True)
     np.savetxt(tmp_path / "ball.xyz", sphere * 20.0 + 5.0)  # millimetres, off centre
     meta = torch.load(tiny["se3"], weights_only=True)["meta"]
-    cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off())
+    # a whole closed surface is a cloud merged from several views: predict.orientation=propagate
+    cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off(),
+                       orientation="propagate")
     assert cloud.source == "points, 300 thinned to 64, normals estimated (local PCA, k=16, MST orientation)"
     # closed form: the outward normal of a sphere at p (centred at 0 after normalising) is p / |p|
     radial = cloud.points / np.linalg.norm(cloud.points, axis=1, keepdims=True)
     assert np.mean(np.sum(cloud.normals * radial, axis=1) > 0.9) >= 0.95
+    # the default (this run records no orientation) is the single-view rule: one side of a closed
+    # sphere is turned inward, which is why a merged cloud needs the option
+    single = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off())
+    assert single.source.endswith("single-view orientation)")
+    assert 0.2 < np.mean(np.sum(single.normals * radial, axis=1) > 0.9) < 0.8
+    # one view of the same sphere (the half facing +z, a sensor far above): every normal faces it
+    top = sphere[sphere[:, 2] > 0.1]
+    np.savetxt(tmp_path / "cap.xyz", top * 20.0)
+    cap = read_input(tmp_path / "cap.xyz", meta, needs_normals=True, clean=CleanSettings.off())
+    assert np.mean(cap.normals[:, 2] > 0) >= 0.95  # closed form: the cap's outward normals all have z > 0
     rows = predict_files(tiny["se3"], tmp_path / "ball.xyz", poses=2)["results"]
     assert "normals estimated" in rows[0]["source"] and sum(rows[0]["probabilities"].values()) == pytest.approx(1.0)
     assert read_input(tmp_path / "ball.xyz", meta).normals is None  # a backbone without normals gets none
 
 
 def test_estimated_normals_follow_the_run_k_and_orientation_when_recorded():
-    # the sampler metadata may lack the normals key (older runs): k 16 and MST propagation, as before
-    assert normals_k({"data": {"sampler": {}}}) == 16 and normals_orientation({"data": {}}) == "propagate"
+    # the sampler metadata may lack the normals key (older runs): k 16 and the single-view rule, which suits
+    # the commonest bare file, one view of a scanner
+    assert normals_k({"data": {"sampler": {}}}) == 16 and normals_orientation({"data": {}}) == "single-view"
     meta = {"data": {"sampler": {"normals": {"source": "estimated", "k": 24, "orientation": "single-view"}}}}
     assert normals_k(meta) == 24 and normals_orientation(meta) == "single-view"
     assert normals_k({"data": {"sampler": {"normals": {"k": "many"}}}}) == 16  # unreadable: the default
