@@ -14,11 +14,12 @@ import json
 import math
 import os
 import shutil
+import signal
 import tempfile
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["atomic_path", "atomic_dir", "write_json", "write_text", "finite_or_none"]
+__all__ = ["atomic_path", "atomic_dir", "write_json", "write_text", "finite_or_none", "signals_deferred"]
 
 
 def _umask() -> int:
@@ -34,24 +35,43 @@ def _ordinary_mode(path: Path, folder: bool) -> None:
 
 
 @contextlib.contextmanager
+def signals_deferred() -> Iterator[None]:
+    """Hold Ctrl-C and SIGTERM until the block ends; they are delivered right after it.
+
+    A signal that lands between making a temporary file and the ``try`` that removes it, or inside
+    the clean-up itself, would leave the file behind; deferring it closes every such window.
+    """
+    if not hasattr(signal, "pthread_sigmask"):  # not on every platform
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT, signal.SIGTERM})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+@contextlib.contextmanager
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success rename it to ``path``, else delete it.
 
     The temporary name keeps the final suffix, so libraries that pick a format from the
-    suffix (numpy's ``.npz``, matplotlib's ``.png``) still work.
+    suffix (numpy's ``.npz``, matplotlib's ``.png``) still work. Ctrl-C and SIGTERM wait until
+    the file is in place (or removed), so an interrupted run never leaves a temporary file.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=f".part{path.suffix}", dir=path.parent)
-    os.close(fd)
-    tmp = Path(tmp)
-    try:
-        yield tmp
-        _ordinary_mode(tmp, folder=False)
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
+    with signals_deferred():
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=f".part{path.suffix}", dir=path.parent)
+        os.close(fd)
+        tmp = Path(tmp)
+        try:
+            yield tmp
+            _ordinary_mode(tmp, folder=False)
+            os.replace(tmp, path)
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
 
 
 @contextlib.contextmanager

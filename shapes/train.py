@@ -18,7 +18,7 @@ import torch
 from torch import nn
 
 from shapes import _checks as check
-from shapes._atomic import atomic_path, write_json
+from shapes._atomic import atomic_path, signals_deferred, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
@@ -264,9 +264,10 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 # the validation split is small: among equal accuracies the lower loss is the surer model
                 if (val_acc, -val_loss) > best:
                     best = (val_acc, -val_loss)
-                    save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
-                                                  "val_loss": val_loss})
-                    saved = epoch
+                    with signals_deferred():  # the checkpoint on disk and the record of it change together
+                        save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
+                                                      "val_loss": val_loss})
+                        saved = epoch
                 write_history("running")
             if out_of_time:
                 if rank == 0:
