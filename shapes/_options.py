@@ -91,6 +91,7 @@ RULES = {
     "sample.scan_fraction": _share,
     "sample.normals": lambda n, v: check.choice(n, v, ("mesh", "estimated")),
     "sample.normals_k": lambda n, v: check.integer(n, v, low=3),
+    "sample.normals_points": lambda n, v: check.integer(n, v, low=16),
     "sample.copies": _copies,
     "sample.oversample": _positive_int,
     "sample.noise": lambda n, v: check.number(n, v, low=0),

@@ -194,7 +194,8 @@ def _run_sample(cfg) -> None:
     s = cfg.sample
     out = build_dataset(cfg.meshes, cfg.data, points=s.points, copies=_plain(s.copies), mode=s.mode,
                         scan_fraction=s.scan_fraction, oversample=s.oversample, noise=s.noise,
-                        normals=s.normals, normals_k=s.normals_k, seed=cfg.seed, progress=True)
+                        normals=s.normals, normals_k=s.normals_k,
+                        normals_points=s.normals_points, seed=cfg.seed, progress=True)
     meta = read_meta(out)
     print(f"wrote {sum(meta['counts'].values())} clouds of {s.points} points "
           f"({', '.join(f'{k} {v}' for k, v in meta['counts'].items())}) for {len(meta['classes'])} classes to {out}/")

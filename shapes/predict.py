@@ -26,7 +26,7 @@ import torch
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.data import MIN_SCAN_POINTS, READ_SUFFIXES, UNITS, CleanSettings, check_spread, clean_points, load_split
-from shapes.data import estimate_normals, farthest_point_subsample, normalise, orient_toward, read_points, sample_cloud
+from shapes.data import dense_normals, farthest_point_subsample, normalise, read_points, sample_cloud
 from shapes.data._normals import ORIENTATIONS
 from shapes.errors import ConfigError, DataError, InputError, MeshError, ShapesError
 from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
@@ -34,7 +34,7 @@ from shapes.geometry import check_regime, random_poses
 from shapes.seeding import rng, torch_generator
 
 __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "NORMAL_MODES", "Cloud", "find_inputs",
-           "read_input", "normals_k", "normals_orientation",
+           "read_input", "normals_k", "normals_points", "normals_orientation",
            "pose_averaged", "known_scores", "calibrate", "predict_files", "format_table"]
 
 SUPPORTED = READ_SUFFIXES  # every suffix shapes.data.read_points takes (meshes, E57, PLY, text, NPY, NPZ)
@@ -114,6 +114,17 @@ def normals_k(meta: dict) -> int:
     return int(k) if isinstance(k, (int, np.integer)) and not isinstance(k, bool) and k >= 3 else NORMALS_K
 
 
+def normals_points(meta: dict) -> int:
+    """Points a scan's normals are estimated on: the run's ``sampler.normals.points`` when recorded,
+    else the count the run's clouds have (runs from before estimated them after thinning)."""
+    sampler = (meta.get("data") or {}).get("sampler") or {}
+    recorded = sampler.get("normals") if isinstance(sampler, dict) else None
+    n = recorded.get("points") if isinstance(recorded, dict) else None
+    if isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 16:
+        return int(n)
+    return int(meta["data"]["points"])
+
+
 def normals_orientation(meta: dict) -> str:
     """How estimated normals are signed without a sensor position: the run's recorded
     ``sampler.normals.orientation`` (so scan files match the training clouds), else single-view: the
@@ -149,13 +160,15 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
 
     Point files (E57, PLY without faces, ``.xyz``/``.txt``/``.csv``, ``.npy``, ``.npz``; see
     :func:`shapes.data.read_points`) go, in this order: read (in ``units``, converted to mm) →
-    clean (:func:`shapes.data.clean_points` with ``clean``; None: the defaults, every step on) →
-    thin to the training point count by farthest-point subsampling (kept whole when smaller, but at
-    least enough for the backbone's neighbourhoods) → normalise to unit RMS radius → normals.
+    clean (:func:`shapes.data.clean_points` with ``clean``; None: the defaults) → normals, when
+    they must be estimated, on up to the run's ``sampler.normals.points`` of the points, as the
+    training scans' were (:func:`shapes.data.dense_normals`) → thin to the training point count by
+    farthest-point subsampling (kept whole when smaller, but at least enough for the backbone's
+    neighbourhoods) → normalise to unit RMS radius.
 
     Normals (only when the backbone takes them): ``normals="auto"`` uses the file's and estimates them
     when it has none, ``"file"`` uses only the file's (an error when it has none), ``"estimated"``
-    ignores the file's. Estimation is :func:`shapes.data.estimate_normals` on the normalised cloud
+    ignores the file's. Estimation is :func:`shapes.data.estimate_normals` (local PCA) before thinning,
     with k from the run's metadata (``sampler.normals.k``, else 16), each normal turned toward the
     sensor: ``viewpoint`` (the file's frame and units) if given, else the file's own (an E57 scan's
     pose, a PLY ``comment viewpoint``), else by ``orientation`` (``"single-view"`` for one view
@@ -210,29 +223,33 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
     sensors = scan.sensor_of_points()
     if viewpoint is not None:
         sensors = np.broadcast_to(np.asarray(viewpoint, dtype=np.float64) * UNITS[units], points.shape)
-    if len(points) > target:
-        keep = farthest_point_subsample(points, target, seed=gen)
-        points, nrm = points[keep], None if nrm is None else nrm[keep]
-        sensors = None if sensors is None else sensors[keep]
-        source += f" thinned to {target}"
-    try:
-        points, centroid, scale = normalise(points)
-    except InputError as exc:  # e.g. every point at one spot
-        raise MeshError(f"scan file {path}: {exc}") from None
-    source += " with normals" if nrm is not None else ""
-    if needs_normals and nrm is None:
+    how, before = None, len(points)
+    if needs_normals and nrm is None:  # estimated where the points are dense, as the training scans were
         k, way = normals_k(meta), orientation or normals_orientation(meta)
+        dense = normals_points(meta)
         try:
-            nrm, _ = estimate_normals(points, k=k, orientation=way)
+            points, nrm, _ = dense_normals(points, dense, k, gen, orientation=way, sensors=sensors)
         except InputError as exc:  # e.g. too few points for the neighbourhoods
             raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
                             "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
         if sensors is not None:
-            nrm = orient_toward(points, nrm, (sensors - centroid) / scale)
             how = "toward the option's viewpoint" if viewpoint is not None else "toward the file's sensor position"
         else:
             how = "MST orientation" if way == "propagate" else f"{way} orientation"
-        source += f", normals estimated (local PCA, k={k}, {how})"
+        how = f"local PCA on {len(points)} points, k={k}, {how}"
+    if len(points) > target:
+        keep = farthest_point_subsample(points, target, seed=gen)
+        points, nrm = points[keep], None if nrm is None else nrm[keep]
+    if before > len(points):
+        source += f" thinned to {len(points)}"
+    try:
+        points, _, _ = normalise(points)
+    except InputError as exc:  # e.g. every point at one spot
+        raise MeshError(f"scan file {path}: {exc}") from None
+    if how is not None:
+        source += f", normals estimated ({how})"
+    elif nrm is not None:
+        source += " with normals"
     return Cloud(points.astype(np.float32), None if nrm is None else nrm.astype(np.float32), source,
                  notes=list(scan.notes), cleanup=steps)
 

@@ -154,3 +154,38 @@ def test_float32_invariance_within_tolerance(name, options, symmetry, cloud):
 def test_too_few_points_for_k_raises(name, options, symmetry):
     with pytest.raises(InputError, match="at least"):
         make(name, options)(torch.randn(1, 5, 3, dtype=torch.float64))
+
+
+# Backbones that take normals, with their two sign conventions. Closed form for the check: a unit
+# normal and its negative span the same line, so a backbone that reads normals as axes
+# (signed_normals: false) must give identical features when any of them is reversed, and one that
+# reads the outward sign must not; both must still turn with the points and (when handed) see a
+# mirror image. A reversed field of estimated normals is a real scan failure (single-view signs).
+NORMAL_CASES = [(n, o) for n, o, s in CASES if n in ("vector_gate", "harmonic_attention") and s == "SE3"]
+
+
+@pytest.mark.parametrize("name,options", NORMAL_CASES, ids=[n for n, _ in NORMAL_CASES])
+@pytest.mark.parametrize("signed", [False, True])
+def test_normal_signs_ignored_unless_signed(name, options, signed, cloud):
+    net = make(name, {**options, "normals": True, "signed_normals": signed})
+    gen = torch.Generator().manual_seed(11)
+    normals = torch.nn.functional.normalize(torch.randn(cloud.shape, generator=gen, dtype=torch.float64), dim=-1)
+    flip = torch.where(torch.rand(cloud.shape[:2] + (1,), generator=gen) < 0.4, -1.0, 1.0).to(torch.float64)
+    base = net(cloud, normals=normals)
+    reversed_some = net(cloud, normals=normals * flip)
+    R = random_rotations(1, generator=gen, dtype=torch.float64)[0]
+    turned = net(rotate(cloud, R) + 0.3, normals=rotate(normals * flip, R))
+    Q = random_improper(1, generator=gen, dtype=torch.float64)[0]
+    mirrored = net(rotate(cloud, Q), normals=rotate(normals, Q))
+    if signed:
+        assert rel_change(base, reversed_some) > 1e-3
+    else:
+        assert rel_change(base, reversed_some) < 1e-12
+        assert rel_change(base, turned) < 1e-9
+    assert rel_change(base, mirrored) > 1e-3  # the hand is still seen through the axes
+
+
+def test_signed_normals_must_be_a_flag():
+    for name, options in NORMAL_CASES:
+        with pytest.raises(ConfigError, match="signed_normals"):
+            build_backbone(name, **{**options, "normals": True, "signed_normals": "yes"})

@@ -223,10 +223,24 @@ def test_a_bare_xyz_file_gets_estimated_normals_for_a_backbone_that_takes_them(t
     # a whole closed surface is a cloud merged from several views: predict.orientation=propagate
     cloud = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off(),
                        orientation="propagate")
-    assert cloud.source == "points, 300 thinned to 64, normals estimated (local PCA, k=16, MST orientation)"
+    # this run records no sampler.normals.points (older runs): estimated on as many points as it keeps
+    assert cloud.source == ("points, 300 thinned to 64, normals estimated (local PCA on 64 points, k=16, "
+                            "MST orientation)")
     # closed form: the outward normal of a sphere at p (centred at 0 after normalising) is p / |p|
     radial = cloud.points / np.linalg.norm(cloud.points, axis=1, keepdims=True)
     assert np.mean(np.sum(cloud.normals * radial, axis=1) > 0.9) >= 0.95
+    # a run that records it has the normals estimated on that many points, before thinning; on
+    # more points the PCA plane hugs the sphere closer (its tilt from the tangent plane shrinks with
+    # the neighbourhood's radius), closed form again: p / |p|
+    dense_meta = {**meta, "data": {**meta["data"], "sampler": {
+        **(meta["data"].get("sampler") or {}), "normals": {"source": "estimated", "k": 16, "points": 300}}}}
+    dense = read_input(tmp_path / "ball.xyz", dense_meta, needs_normals=True, clean=CleanSettings.off(),
+                       orientation="propagate")
+    assert "local PCA on 300 points" in dense.source and dense.points.shape == (64, 3)
+    dense_radial = dense.points / np.linalg.norm(dense.points, axis=1, keepdims=True)
+    fine = np.abs(np.sum(dense.normals * dense_radial, axis=1))
+    coarse = np.abs(np.sum(cloud.normals * radial, axis=1))
+    assert np.median(fine) > np.median(coarse) and np.median(fine) > 0.99
     # the default (this run records no orientation) is the single-view rule: one side of a closed
     # sphere is turned inward, which is why a merged cloud needs the option
     single = read_input(tmp_path / "ball.xyz", meta, needs_normals=True, clean=CleanSettings.off())

@@ -146,6 +146,8 @@ class HarmonicAttentionConfig:
     cutoff: float = 1.0  # in RMS radii of the normalised part (filters fade to 0 there); ~4x a 16-NN radius
     parity: str = "full"  # "full": tell mirror twins apart (SE3); "even": reflection-invariant (E3)
     normals: bool = False  # True: also take outward surface normals (B, N, 3); False keeps bare point clouds working
+    signed_normals: bool = False  # False: a normal counts as an axis (n and -n alike; see normal_inputs), so
+    # estimated normals turned the wrong way on a scan do not read as the mirror image
     edge_block: int = 16384  # edges per block of the fast path: bounds its temporaries; results do not depend on it
     context: bool = True  # the cloud's mean of every feature type joins each layer and the readout (global shape, bracket hand)
     smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance (and at
@@ -186,6 +188,7 @@ class HarmonicAttentionConfig:
         if not isinstance(self.context, bool):
             raise ConfigError(f"context should be true or false, got {self.context!r}.")
         check_flag(self.smooth_neighbours, "harmonic_attention", "smooth_neighbours")
+        check_flag(self.signed_normals, "harmonic_attention", "signed_normals")
 
 
 def _count(value, name: str, minimum: int) -> int:
@@ -270,7 +273,8 @@ class NormalInputs(NamedTuple):
     pseudo: torch.Tensor
 
 
-def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tensor, edges: EdgeFrame) -> NormalInputs:
+def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tensor, edges: EdgeFrame,
+                  signed: bool = True) -> NormalInputs:
     """Exactly equivariant per-point quantities of the points and their outward normals.
 
     With ``y`` a point's offset from the centroid in RMS radii, ``n`` its unit normal and
@@ -285,6 +289,13 @@ def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tenso
     - pseudo-scalars: ``chi = det[y, n, M n]``, ``chi a``, and the cloud's ``mean(chi) a`` at every
       point. A helical flank tilts ``n`` about the axis in a sense set by the hand, so ``mean(chi)``
       takes the hand's sign; ``a`` makes the sign the same for a long stud and a flat gear.
+
+    With ``signed=False`` every quantity is even in each point's normal (``n -> -n`` point by point
+    changes nothing), for normals estimated from a scan's points, whose signs are unreliable (a field
+    of reversed normals reads as the mirror image in the odd terms). Each term odd in ``n`` is
+    multiplied by ``w = n . y / |y|``, the normal's lean away from the centroid: the scalars become
+    ``w^2``, ``w n . mean_j r_ij / mean_j |r_ij|`` and ``w n . mean_j w_j n_j``; the vectors
+    ``w n``, ``w M n``, ``y`` and ``mean_j w_j n_j``. ``n^T M n`` and ``chi`` are even already.
 
     Parameters
     ----------
@@ -309,6 +320,11 @@ def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tenso
     mn = normals @ moment  # (B, N, 3); M is symmetric, so this is M n per point
     chi = (torch.linalg.cross(y, normals) * mn).sum(-1)  # (B, N): det[y, n, M n]
     cloud = masked_mean(chi, mask) * aniso  # (B,)
+    nmn = (normals * mn).sum(-1)  # (B, N): n^T M n
+    facing = (normals * y).sum(-1) / safe_norm(y)  # (B, N): n . y / |y|
+    if not signed:  # every odd use of n below takes w n instead, w = n . y / |y|: even in the sign of n
+        normals, mn = normals * facing[..., None], mn * facing[..., None]
+        facing = facing * facing
 
     valid = edges.taper.to(y.dtype)[..., None]  # (B, N, k, 1): neighbourhood weights, 0 on invalid slots
     count = valid.sum(-2).clamp_min(1.0)  # (B, N, 1)
@@ -317,8 +333,8 @@ def normal_inputs(points: torch.Tensor, normals: torch.Tensor, mask: torch.Tenso
     mean_length = (edges.length * valid[..., 0]).sum(-1) / count[..., 0]  # invalid slots have length 0
     scalars = torch.stack(
         [
-            (normals * y).sum(-1) / safe_norm(y),
-            (normals * mn).sum(-1),
+            facing,
+            nmn,
             (normals * mean_nj).sum(-1),
             (normals * mean_r).sum(-1) / (mean_length + 1e-6),
             aniso[:, None].expand_as(chi),
@@ -713,7 +729,7 @@ class HarmonicAttentionBackbone(Backbone):
         # Unit length (a scale-free input) and 0 on padding; sqrt(eps) keeps a zero normal finite.
         normals = normals.masked_fill(~mask[..., None], 0.0)
         normals = normals / safe_norm(normals, eps=1e-24)[..., None]
-        extra = normal_inputs(points, normals, mask, edges)
+        extra = normal_inputs(points, normals, mask, edges, signed=self.config.signed_normals)
         scalars = self.embed(torch.cat([descriptors, extra.scalars], -1))  # (B, N, C0)
         h = {(0, 1): scalars.unsqueeze(-1)}  # (B, N, C0, 1)
         if (0, -1) in self.layers[0].types_in:

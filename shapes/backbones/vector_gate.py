@@ -65,6 +65,8 @@ class VectorGateConfig:
     handedness: bool = True  # keep cross/triple products so mirror twins can be told apart
     normals: bool = False  # also take unit outward surface normals (B, N, 3): they show the tilt of
     # thread flanks and helical teeth that a few hundred points cannot (False: bare points suffice)
+    signed_normals: bool = False  # False: a normal counts as an axis (n and -n alike; see Embedding), so a
+    # scan whose estimated normals came out turned inward reads as the same part, not as its mirror twin
     smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance (and at
     # radius): scans lie on a lattice, neighbours tie, and a hard kNN set let rounding pick which tied point
     # counted (logits moved 4e-2 under rotation in float32); False: the old hard graph
@@ -330,14 +332,22 @@ class Embedding(nn.Module):
     ``mean_j det[n_i, n_j, r_ij]``. On a helicoid (a thread flank, a helical tooth, a coil) the normal
     leans along the axis in step with the turn, so ``det[y, n, M n]`` keeps one sign over the whole
     surface, the sign of the hand times that of the part's axial stretch, which ``M`` gives as well;
-    on flats and plain cylinders it vanishes. The normals are taken as given: outward on a closed
-    mesh, towards the scanner on a range scan (the shards hold both kinds consistently).
+    on flats and plain cylinders it vanishes.
+
+    With ``signed_normals=False`` (the default) every term is even in each point's normal, so turning
+    any normal around (``n -> -n``, point by point) changes nothing: a scan's normals estimated from
+    its points have a direction but an unreliable sign (single-view signs came out reversed on about
+    one scan in nine of the demo parts, noisy scanners included), and a reversed field of normals
+    reads like the mirror image in the odd terms above. The terms that are odd in ``n`` are then
+    multiplied by ``n . c2 / |c2|`` (the normal's lean away from the centroid), which makes them
+    even: ``w n``, ``w (n . c1)``, ``w (n x c2)`` and ``det[w_i n_i, w_j n_j, r_ij]`` for
+    ``w = n . c2 / |c2|``; the terms even already (``n x M n``, ``det[c2, n, M n]``, ...) stay.
     """
 
     def __init__(self, config: VectorGateConfig):
         super().__init__()
         S, V = config.scalars, config.vectors
-        self.handed, self.normals = config.handedness, config.normals
+        self.handed, self.normals, self.signed = config.handedness, config.normals, config.signed_normals
         extra = 1 if config.normals else 0
         self.scalar = nn.Linear(10 + 2 * extra, S)
         self.vector = ChannelMix(4 + extra, V)
@@ -364,9 +374,12 @@ class Embedding(nn.Module):
         spread = torch.sqrt((((dist - mean_d.unsqueeze(2)) ** 2) * mean).sum(2) + _EPS)  # (B, N, 1)
         scalars = [n, cos, mean_d, spread]
         if self.normals:
-            u = normals  # (B, N, 3) unit outward normals
-            scalars.append(dot(u.unsqueeze(-2), c[..., :2, :]) / nd[..., :2])  # (B, N, 2): n.c1, n.c2
-            c = torch.cat([c, u.unsqueeze(-2)], -2)  # (B, N, 5, 3)
+            u = normals  # (B, N, 3) unit normals, outward (signed) or of either sign
+            facing = dot(u.unsqueeze(-2), c[..., :2, :]) / nd[..., :2]  # (B, N, 2): n.c1, n.c2 (normalised)
+            # w u: the normal made even in its sign, weighted by its lean away from the centroid
+            su = u if self.signed else u * facing[..., 1:]  # (B, N, 3)
+            scalars.append(facing if self.signed else facing * facing[..., 1:])  # (B, N, 2)
+            c = torch.cat([c, su.unsqueeze(-2)], -2)  # (B, N, 5, 3)
         s = self.scalar(torch.cat(scalars, -1))  # (B, N, S)
         v = self.vector(c)  # (B, N, V, 3)
         if not self.handed:
@@ -380,9 +393,9 @@ class Embedding(nn.Module):
         odd = [triple, helix, _twist(c1, c3, mask, geom), _global_chirality(c2, geom)]
         if self.normals:
             mu = u @ M  # (B, N, 3)
-            axial = torch.cat([axial, torch.stack([cross(u, mu), cross(u, c2)], -2)], -2)  # (B, N, 6, 3)
-            uj = gather_neighbours(u, geom.index)  # (B, N, k, 3)
-            twist_n = (dot(cross(u.unsqueeze(2), uj), geom.rel) * geom.mean).sum(2, keepdim=True)  # (B, N, 1)
+            axial = torch.cat([axial, torch.stack([cross(u, mu), cross(su, c2)], -2)], -2)  # (B, N, 6, 3)
+            uj = gather_neighbours(su, geom.index)  # (B, N, k, 3)
+            twist_n = (dot(cross(su.unsqueeze(2), uj), geom.rel) * geom.mean).sum(2, keepdim=True)  # (B, N, 1)
             odd += [dot(c2, cross(u, mu)).unsqueeze(-1), dot(c2, cross(u, mu @ M)).unsqueeze(-1), twist_n]
         a = self.pseudo_vector(axial)  # (B, N, V, 3)
         p = self.pseudo_scalar(torch.cat(odd, -1))  # (B, N, V)
@@ -559,7 +572,7 @@ def _check_config(c: VectorGateConfig) -> None:
             isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0 or math.isinf(value)
         ):
             raise ConfigError(f"vector_gate option '{field}' should be a positive number or None, got {value!r}.")
-    for field in ("handedness", "normals", "smooth_neighbours"):
+    for field in ("handedness", "normals", "signed_normals", "smooth_neighbours"):
         if not isinstance(getattr(c, field), bool):
             raise ConfigError(f"vector_gate option '{field}' should be true or false, got {getattr(c, field)!r}.")
 
