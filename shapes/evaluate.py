@@ -57,7 +57,10 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
     payload = _load_weights_only(path, device)
     try:
         meta = payload["meta"]
-        backbone = build_backbone(meta["backbone"]["name"], **meta["backbone"]["options"])
+        options = dict(meta["backbone"]["options"])
+        if meta["backbone"]["name"] in ("vector_gate", "harmonic_attention") and "signed_normals" not in options:
+            options["signed_normals"] = True  # runs from before the option read the normals' signs
+        backbone = build_backbone(meta["backbone"]["name"], **options)
         model = Classifier(backbone, len(meta["classes"]), **meta["head"])
         fit = model.load_state_dict(payload["state_dict"], strict=False)
     except (KeyError, RuntimeError, EOFError, TypeError, pickle.UnpicklingError) as exc:
