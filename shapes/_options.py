@@ -27,8 +27,9 @@ VERB_SECTIONS: dict[str, tuple[str, ...]] = {
     "parts": ("parts", "seed", "meshes"),
     "sample": ("sample", "seed", "meshes", "data"),
     "train": ("train", "seed", "data"),
-    "eval": ("eval", "seed", "run"),
-    "predict": ("predict", "seed", "run"),
+    "eval": ("eval", "seed", "run", "allow_unfinished"),
+    "predict": ("predict", "seed", "run", "allow_unfinished"),
+    "export": ("export", "run", "allow_unfinished"),
     "demo": ("demo", "seed", "meshes", "sample", "train"),
 }
 
@@ -70,6 +71,13 @@ def _minutes(name, value):
     if not isinstance(value, dict):
         check.fail(name, "a mapping of backbone name to minutes", repr(value))
     return {k: check.number(f"{name}.{k}", v, low=0, low_open=True) for k, v in value.items()}
+
+
+def _export_format(name, value):
+    if value != "torchscript":
+        check.fail(name, "torchscript (the only format; torch's ONNX exporter cannot translate the neighbour search)",
+                   repr(value))
+    return value
 
 
 def _backbone_options(name, value):
@@ -132,6 +140,12 @@ RULES = {
     "predict.clean.plane_share": lambda n, v: check.number(n, v, low=0, low_open=True, high=1),
     "predict.clean.plane_beyond": _share,
     "predict.clean.plane_confidence": lambda n, v: check.number(n, v, low=0, low_open=True, high=1, high_open=True),
+    # export
+    "allow_unfinished": check.boolean,
+    "export.format": _export_format,
+    "export.out": lambda n, v: check.optional(check.text, n, v),
+    "export.points": lambda n, v: check.optional(check.integer, n, v, low=2),
+    "export.threads": _threads,
     # demo
     "demo.out": check.text,
     "demo.backbones": lambda n, v: check.listed(n, v, check.text, one_as_list=True),

@@ -24,6 +24,7 @@ VERBS: dict[str, str] = {
     "eval": "score a trained run (run=<folder>|latest) under random poses and mirror images",
     "demo": "parts → sample → train each backbone briefly → evaluate → one combined report",
     "predict": "name new scans (predict.input=<file|folder>) with a run: class, confidence, or not a known part",
+    "export": "write a run's classifier as a TorchScript file that loads with torch alone (export.format=torchscript)",
 }
 
 # the config sections each verb reads, shown by `shapes <verb> --help`
@@ -34,6 +35,7 @@ SECTIONS: dict[str, tuple[str, ...]] = {
     "eval": ("run", "eval", "seed"),
     "demo": ("meshes", "demo", "seed"),
     "predict": ("run", "predict", "seed"),
+    "export": ("run", "export"),
 }
 
 FLAGS = {"-m", "--multirun", "--traceback", "-h", "--help"}
@@ -163,6 +165,22 @@ def _latest_run(run: str) -> str:
     return str(finished[-1].parent)
 
 
+def _trained_run(cfg) -> str:
+    """The run ``eval``, ``predict`` and ``export`` use: ``run=latest`` resolved, and a run whose
+    training did not finish refused unless ``allow_unfinished=true``."""
+    run = _latest_run(cfg.run)
+    folder = Path(run) if Path(run).is_dir() else Path(run).parent
+    status = _run_status(folder)
+    if status in ("interrupted", "diverged", "running") and not cfg.get("allow_unfinished", False):
+        why = ("its checkpoint is the last good one before the loss became non-finite; retrain with a lower "
+               "train.lr" if status == "diverged" else
+               f"its checkpoint is the best of the epochs it finished; continue it with `shapes train "
+               f"resume={folder}`")
+        raise ConfigError(f"run '{run}' did not finish training (status: {status}): {why}, or pass "
+                          "allow_unfinished=true to use it as it is.")
+    return run
+
+
 def _run_status(run_dir: Path) -> str | None:
     """The ``status`` in a run's train_history.json (None when it has none: an older run)."""
     import json
@@ -234,7 +252,7 @@ def _run_eval(cfg) -> None:
     from shapes.report import run_report
 
     e = cfg.eval
-    metrics = evaluate_run(_latest_run(cfg.run), None, poses=tuple(eval_poses(_plain(e.poses))), repeats=e.repeats,
+    metrics = evaluate_run(_trained_run(cfg), None, poses=tuple(eval_poses(_plain(e.poses))), repeats=e.repeats,
                            seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
     report = run_report(metrics, Path(metrics["checkpoint"]).parent)
     for regime, m in metrics["regimes"].items():
@@ -268,7 +286,7 @@ def _run_predict(cfg) -> None:
     if p.input is None:
         raise ConfigError("predict.input is not set; name a scan or mesh file, or a folder of them "
                           "(predict.input=<path>).")
-    result = predict_files(_latest_run(cfg.run), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
+    result = predict_files(_trained_run(cfg), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
                            calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
                            out=p.out, units=p.units, clean=_plain(p.clean), normals=p.normals,
                            viewpoint=_plain(p.viewpoint), orientation=p.orientation)
@@ -278,6 +296,17 @@ def _run_predict(cfg) -> None:
         print(f"error: {result['failed']} of {len(result['results'])} file(s) could not be classified; "
               f"see their rows in {p.out}", file=sys.stderr)
         raise SystemExit(1)
+
+
+def _run_export(cfg) -> None:
+    from shapes.export import export_run
+
+    e = cfg.export
+    result = export_run(_trained_run(cfg), e.out, format=e.format, points=e.points, threads=e.threads)
+    meta = result["metadata"]
+    inputs = " and ".join(f"{name} (1, {meta['points']}, 3)" for name in meta["inputs"])
+    print(f"wrote {result['path']}: {meta['backbone']} classifier of {len(meta['classes'])} classes taking {inputs}; "
+          f"logits within {result['max_difference']:.1e} of the run's network; load it with torch.jit.load")
 
 
 def _interrupted(exc: KeyboardInterrupt) -> int:
@@ -317,6 +346,8 @@ def main(argv: list[str] | None = None) -> int:
         return _error(f"unknown verb '{verb}'; choose one of: {', '.join(VERBS)}.")
     flags = [a for a in rest if a.startswith("-")]
     overrides = [a for a in rest if not a.startswith("-")]
+    if verb == "export":  # `shapes export format=...` reads as export.format
+        overrides = [f"export.{a}" if a.startswith("format=") else a for a in overrides]
     bad = [f for f in flags if f not in FLAGS]
     if bad:
         return _error(f"unknown flag {bad[0]}; expected key=value overrides or one of {', '.join(sorted(FLAGS))}.")
