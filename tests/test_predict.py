@@ -491,3 +491,19 @@ def test_a_ten_million_point_scan_is_classified_beside_a_small_one(tiny, tmp_pat
     assert result["failed"] == 0 and set(rows) == {"ten_million.ply", "small.npy"}
     assert rows["ten_million.ply"]["source"].startswith("points, 10000000 read as ")
     assert any("thinned to" in note and "while reading" in note for note in rows["ten_million.ply"]["reading"])
+
+
+def test_a_run_from_before_signed_normals_loads_with_signed_normals(tiny, tmp_path):
+    # A checkpoint's options are what its weights were trained with. Runs written before the
+    # option existed read the normals' signs; loading them with the new default (axes) would keep
+    # every weight and silently change what the network computes.
+    from shapes.evaluate import load_classifier
+
+    payload = torch.load(tiny["se3"], weights_only=True)
+    assert payload["meta"]["backbone"]["options"]["signed_normals"] is False  # new runs record it
+    old = {**payload, "meta": {**payload["meta"], "backbone": {**payload["meta"]["backbone"], "options": {
+        k: v for k, v in payload["meta"]["backbone"]["options"].items() if k != "signed_normals"}}}}
+    torch.save(old, tmp_path / "checkpoint.pt")
+    legacy, _ = load_classifier(tmp_path / "checkpoint.pt")
+    current, _ = load_classifier(tiny["se3"])
+    assert legacy.backbone.config.signed_normals is True and current.backbone.config.signed_normals is False
