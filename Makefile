@@ -18,7 +18,7 @@ demo: $(STAMP)
 	$(BIN)/shapes demo
 
 test: $(STAMP)
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -rs
 
 bench: $(STAMP)
 	for script in bench/bench_*.py; do $(BIN)/python $$script || exit 1; done

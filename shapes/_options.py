@@ -28,6 +28,7 @@ VERB_SECTIONS: dict[str, tuple[str, ...]] = {
     "sample": ("sample", "seed", "meshes", "data"),
     "train": ("train", "seed", "data"),
     "eval": ("eval", "seed", "run", "allow_unfinished"),
+    "compare": ("compare",),
     "predict": ("predict", "seed", "run", "allow_unfinished"),
     "export": ("export", "run", "allow_unfinished"),
     "demo": ("demo", "seed", "meshes", "sample", "train"),
@@ -122,6 +123,10 @@ RULES = {
     "eval.repeats": _positive_int,
     "eval.batch_size": _positive_int,
     "eval.threads": _threads,
+    # compare
+    "compare.out": lambda n, v: check.optional(check.text, n, v),
+    "compare.poses": lambda n, v: None if v is None else check.listed(
+        n, v, lambda name, x: check_regime(x, POSES, name), one_as_list=True),
     # predict
     "predict.input": lambda n, v: check.optional(check.text, n, v),
     "predict.poses": _positive_int,

@@ -22,6 +22,8 @@ VERBS: dict[str, str] = {
     "sample": "turn a catalog folder (meshes=...) into point-cloud shards (data=...)",
     "train": "train a classifier (backbone=<name>) on the shards; -m sweeps over values",
     "eval": "score a trained run (run=<folder>|latest) under random poses and mirror images",
+    "compare": "evaluated runs side by side (shapes compare RUN_DIR... ; a sweep folder holds several): "
+               "one table, mean ± sd over seeds, overlaid curves",
     "demo": "parts → sample → train each backbone briefly → evaluate → one combined report",
     "predict": "name new scans (predict.input=<file|folder>) with a run: class, confidence, or not a known part",
     "export": "write a run's classifier as a TorchScript file that loads with torch alone (export.format=torchscript)",
@@ -33,6 +35,7 @@ SECTIONS: dict[str, tuple[str, ...]] = {
     "sample": ("meshes", "data", "sample", "seed"),
     "train": ("backbone", "data", "train", "seed"),
     "eval": ("run", "eval", "seed"),
+    "compare": ("compare",),
     "demo": ("meshes", "demo", "seed"),
     "predict": ("run", "predict", "seed"),
     "export": ("run", "export"),
@@ -41,6 +44,7 @@ SECTIONS: dict[str, tuple[str, ...]] = {
 FLAGS = {"-m", "--multirun", "--traceback", "-h", "--help"}
 
 _verb: str = ""  # the verb the Hydra task below dispatches on
+_positional: list[str] = []  # `shapes compare`'s run folders (the only verb that takes plain arguments)
 
 
 def _usage() -> str:
@@ -115,7 +119,8 @@ def _verb_help(verb: str, overrides: list[str]) -> str:
     full = OmegaConf.to_container(cfg, resolve=False)
     shown = {k: full[k] for k in SECTIONS[verb]}
     lines = [f"shapes {verb}: {VERBS[verb]}", "",
-             f"usage: shapes {verb} [key=value ...]" + (" [-m]" if verb == "train" else "") + " [--traceback]", "",
+             f"usage: shapes {verb}" + (" RUN_DIR..." if verb == "compare" else "") + " [key=value ...]"
+             + (" [-m]" if verb == "train" else "") + " [--traceback]", "",
              "choices:"]
     lines += [f"  {g}: {', '.join(opts)}" for g, opts in _groups().items()]
     lines += ["  train.poses: cad, upright, any", "  eval.poses: a list from cad, upright, any, mirrored",
@@ -165,10 +170,10 @@ def _latest_run(run: str) -> str:
     return str(finished[-1].parent)
 
 
-def _trained_run(cfg) -> str:
-    """The run ``eval``, ``predict`` and ``export`` use: ``run=latest`` resolved, and a run whose
-    training did not finish refused unless ``allow_unfinished=true``."""
-    run = _latest_run(cfg.run)
+def _trained_run(cfg, run: str | None = None) -> str:
+    """The run ``eval``, ``predict`` and ``export`` use (``cfg.run``, or ``run`` when given): ``run=latest``
+    resolved, and a run whose training did not finish refused unless ``allow_unfinished=true``."""
+    run = _latest_run(cfg.run if run is None else run)
     folder = Path(run) if Path(run).is_dir() else Path(run).parent
     status = _run_status(folder)
     if status in ("interrupted", "diverged", "running") and not cfg.get("allow_unfinished", False):
@@ -235,7 +240,13 @@ def _run_train(cfg) -> None:
         set_threads(settings.threads)
         seed_everything(settings.seed)  # before the backbone is built: building it draws its weights
         backbone = _build_backbone(cfg.backbone)
-        ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+        if type(backbone).__module__ + "." + type(backbone).__qualname__ == "shapes.baseline.D2Options":
+            from shapes.baseline import train_d2  # the classical baseline: fitted, not trained by steps
+
+            ckpt = train_d2(cfg.data, run_dir, backbone, seed=settings.seed, threads=settings.threads,
+                            extra=settings.extra)
+        else:
+            ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
     except BaseException:
         if run_dir.is_dir() and not any(run_dir.iterdir()):
             run_dir.rmdir()  # Hydra made the folder before the job failed: leave nothing behind
@@ -248,16 +259,35 @@ def _run_train(cfg) -> None:
 
 def _run_eval(cfg) -> None:
     from shapes._options import eval_poses
-    from shapes.evaluate import evaluate_run
+    from shapes.evaluate import CHECKPOINT, evaluate_run
     from shapes.report import run_report
 
     e = cfg.eval
-    metrics = evaluate_run(_trained_run(cfg), None, poses=tuple(eval_poses(_plain(e.poses))), repeats=e.repeats,
-                           seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
-    report = run_report(metrics, Path(metrics["checkpoint"]).parent)
-    for regime, m in metrics["regimes"].items():
-        print(f"{regime:>8}: accuracy {100 * m['accuracy']:5.1f}%")
-    print(f"report: {report}")
+    run = Path(_latest_run(cfg.run))
+    # a folder of runs (a sweep) is evaluated run by run
+    runs = [run] if not run.is_dir() or (run / CHECKPOINT).is_file() else \
+        sorted(p.parent for p in run.rglob(CHECKPOINT)) or [run]
+    for one in runs:
+        metrics = evaluate_run(_trained_run(cfg, str(one)), None, poses=tuple(eval_poses(_plain(e.poses))),
+                               repeats=e.repeats, seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
+        report = run_report(metrics, Path(metrics["checkpoint"]).parent)
+        if len(runs) > 1:
+            print(f"{one}:")
+        for regime, m in metrics["regimes"].items():
+            print(f"{regime:>8}: accuracy {100 * m['accuracy']:5.1f}%")
+        print(f"report: {report}")
+
+
+def _run_compare(cfg) -> None:
+    import time
+
+    from shapes.compare import compare_runs
+
+    c = cfg.compare
+    out = c.out or f"runs/compare/{time.strftime('%Y%m%d-%H%M%S')}"
+    report = compare_runs(_positional, out, poses=_plain(c.poses))
+    print(Path(report).read_text().split("\n## ")[0].rstrip())
+    print(f"\nreport: {report} (and {Path(report).with_suffix('.html').name}, compare.json, plots)")
 
 
 def _run_demo(cfg) -> None:
@@ -348,6 +378,10 @@ def main(argv: list[str] | None = None) -> int:
     overrides = [a for a in rest if not a.startswith("-")]
     if verb == "export":  # `shapes export format=...` reads as export.format
         overrides = [f"export.{a}" if a.startswith("format=") else a for a in overrides]
+    positional = [a for a in overrides if "=" not in a] if verb == "compare" else []
+    overrides = [a for a in overrides if a not in positional]
+    if verb == "compare" and not positional and not ({"-h", "--help"} & set(flags)):
+        return _error("shapes compare needs run folders: shapes compare RUN_DIR... (a sweep folder counts as its runs).")
     bad = [f for f in flags if f not in FLAGS]
     if bad:
         return _error(f"unknown flag {bad[0]}; expected key=value overrides or one of {', '.join(sorted(FLAGS))}.")
@@ -371,6 +405,7 @@ def main(argv: list[str] | None = None) -> int:
     import hydra
 
     _verb = verb
+    _positional[:] = positional
     task = hydra.main(config_path=str(CONF_DIR), config_name="config", version_base=None)(_task)
     saved = sys.argv
     sys.argv = [f"shapes {verb}"] + (["-m"] if multirun else []) + overrides + [f"hydra.job.name={verb}"]

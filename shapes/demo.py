@@ -55,7 +55,12 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
         seed_everything(seed)  # before the backbone is built: building it draws its weights
         backbone = make()
         settings = TrainSettings(epochs=epochs, seed=seed, threads=threads, max_minutes=budget, mirror=mirror)
-        train_classifier(backbone, data, out / name, settings)
+        if type(backbone).__name__ == "D2Options":  # the classical baseline (backbone d2): fitted in one go
+            from shapes.baseline import train_d2
+
+            train_d2(data, out / name, backbone, seed=seed, threads=threads)
+        else:
+            train_classifier(backbone, data, out / name, settings)
         metrics = evaluate_run(out / name, data, repeats=repeats, seed=seed, threads=threads)
         metrics["train_seconds"] = time.perf_counter() - t0  # training and evaluation
         run_report(metrics, out / name)

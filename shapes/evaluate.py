@@ -14,10 +14,12 @@ part's surface each scan shows.
 
 from __future__ import annotations
 
+import json
 import math
 import os
 import pickle
 import re
+import time
 from pathlib import Path
 
 import numpy as np
@@ -29,16 +31,19 @@ from shapes._runtime import set_threads
 from shapes.backbones import Classifier, build_backbone
 from shapes.data import SCAN, SURFACE, load_split
 from shapes.errors import ConfigError, DataError
+from shapes.metrics import expected_calibration_error, pose_consistency, reliability_curve
 from shapes.geometry import POSE_REGIMES, check_regime, axis_angle_to_matrix, random_improper, random_poses, random_rotations
 from shapes.seeding import torch_generator
 from shapes.train import CHECKPOINT
 
 __all__ = ["load_classifier", "find_checkpoint", "logits_under_poses", "score", "invariance_errors",
-           "evaluate_run"]
+           "evaluate_run", "parameter_count", "CALIBRATION_BINS"]
 
 ANGLES_DEG = (0, 30, 60, 90, 120, 150, 180)
 VISIBLE_BINS = (0.0, 0.2, 0.3, 0.4, 0.5, 1.0)  # edges of the visible-share bins of the scans' curve
 NOISE_LEVELS = (0.0, 0.01, 0.02, 0.05)  # in RMS radii of the normalised part
+CALIBRATION_BINS = 10  # equal-width confidence bins of the calibration error (Guo et al. 2017 use 15 on
+# 10 000 images; a test split of a few hundred clouds fills 10 bins better)
 
 
 def find_checkpoint(run: str | os.PathLike) -> Path:
@@ -55,6 +60,11 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
     """Rebuild the classifier from a checkpoint (``weights_only=True``); returns (model in eval mode, meta)."""
     path = find_checkpoint(run)
     payload = _load_weights_only(path, device)
+    if ((payload.get("meta") or {}).get("backbone") or {}).get("name") == "d2":
+        from shapes.baseline import load_d2  # the classical baseline: a forest behind the same interface
+
+        model, meta = load_d2(payload, path)
+        return model.to(device).eval(), meta
     try:
         meta = payload["meta"]
         options = dict(meta["backbone"]["options"])
@@ -204,29 +214,110 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
     y = np.asarray(test.labels)
     gen = torch_generator(seed)
     results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": meta["backbone"],
-                     "repeats": repeats, "test_clouds": int(len(x)), "classes": classes, "regimes": {}}
+                     "train": meta.get("train", {}), "catalog": test.meta.get("catalog"), "twins": dict(meta["twins"]),
+                     "handed": dict(meta["handed"]), "seed": seed, "repeats": repeats, "test_clouds": int(len(x)),
+                     "classes": classes, "regimes": {}}
     kind = np.tile(np.asarray(test.kind), repeats)
+    infer_seconds, inferred = 0.0, 0
     for regime in poses:
-        preds, targets = [], []
+        probs, targets = [], []
         for _ in range(repeats):
             rot = random_poses(regime, len(x), generator=gen)
-            preds.append(logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy())
+            t0 = time.perf_counter()
+            logits = logits_under_poses(model, x, rot, batch_size, nrm)
+            infer_seconds, inferred = infer_seconds + time.perf_counter() - t0, inferred + len(x)
+            probs.append(torch.softmax(logits.double(), -1).numpy())
             targets.append(twin_index[y] if regime == "mirrored" else y)
-        pred, target = np.concatenate(preds), np.concatenate(targets)
+        prob, target = np.concatenate(probs), np.concatenate(targets)
+        pred = prob.argmax(-1)
         results["regimes"][regime] = score(pred, target, classes, meta["handed"])
+        results["regimes"][regime].update(_calibration(prob, target, pred, repeats))
         results["regimes"][regime]["by_kind"] = {
             name: _kind_score(pred[kind == value], target[kind == value], classes, meta["handed"])
             for name, value in (("surface", SURFACE), ("scan", SCAN))}
     results["scans"] = _scan_condition(model, x, nrm, y, test, twin_index, classes, meta["handed"], gen,
                                        repeats, batch_size)
+    results["hand"] = _hand_test(model, x, nrm, y, twin_index, gen, batch_size)
     few = min(len(x), 32)
     results["invariance"] = invariance_errors(model, x[:few], seed=seed, normals=nrm[:few])
     if sweeps:
         results["angle_sweep"] = _angle_sweep(model, x, nrm, y, gen, batch_size)
         results["noise_sweep"] = _noise_sweep(model, x, nrm, y, gen, batch_size)
+    results["cost"] = _cost(model, meta, ckpt.parent, inferred, infer_seconds, batch_size)
     if write:
         write_json(ckpt.parent / "metrics.json", results)
     return results
+
+
+def _calibration(prob: np.ndarray, target: np.ndarray, pred: np.ndarray, repeats: int) -> dict:
+    """Expected calibration error, the reliability curve and pose consistency of one regime.
+
+    ``prob (repeats * M, C)`` holds the test clouds in order once per pose, so the answers of cloud
+    ``i`` are ``pred[i::M]``; pose consistency needs at least two poses per cloud.
+    """
+    curve = reliability_curve(prob, target, CALIBRATION_BINS)
+    votes = pred.reshape(repeats, -1).T  # (M, repeats)
+    return {
+        "ece": expected_calibration_error(prob, target, CALIBRATION_BINS),
+        "reliability": {"edges": curve.edges.tolist(), "count": curve.count.tolist(),
+                        "confidence": [None if math.isnan(v) else float(v) for v in curve.confidence],
+                        "accuracy": [None if math.isnan(v) else float(v) for v in curve.accuracy]},
+        "mean_confidence": float(prob.max(-1).mean()),
+        "pose_consistency": pose_consistency(votes) if repeats >= 2 else None,
+    }
+
+
+def parameter_count(model) -> int:
+    """Numbers the model learned: trainable weights of a network, stored tree numbers of a forest."""
+    own = getattr(model, "learned_numbers", None)
+    if own is not None:
+        return int(own() if callable(own) else own)
+    return int(sum(p.numel() for p in model.parameters()))
+
+
+def _cost(model, meta: dict, run_dir: Path, inferred: int, infer_seconds: float, batch_size: int) -> dict:
+    """What the run cost: training wall time and threads (from the run's record), parameters, and
+    inference throughput measured over every pose regime of this evaluation."""
+    history = {}
+    try:
+        history = json.loads((run_dir / "train_history.json").read_text())
+    except (OSError, ValueError):
+        pass
+    train_threads = meta.get("train", {}).get("threads")
+    return {
+        "train_seconds": history.get("wall_seconds"),
+        "train_epochs": len(history.get("history", [])) or None,
+        "train_threads": train_threads,
+        "train_threads_note": "train.threads" if train_threads else "torch's default (train.threads unset)",
+        "max_minutes": meta.get("train", {}).get("max_minutes"),
+        "parameters": parameter_count(model),
+        "eval_threads": int(torch.get_num_threads()),
+        "parts_per_second": inferred / infer_seconds if infer_seconds > 0 else None,
+        "inference_batch_size": int(batch_size),
+        "inferred_parts": int(inferred),
+    }
+
+
+@torch.no_grad()
+def _hand_test(model, x, nrm, y, twin_index, gen, batch_size) -> dict:
+    """Each handed test cloud and its mirror image (``x -> -x``), both under one uniform random rotation.
+
+    ``twin_answer``: share whose mirror image is named as the mirror twin of the part's own (handed)
+    answer (what a model that sees hand does); ``same_answer``: share whose mirror image gets the part's own
+    answer (what a model blind to hand does, always).
+    """
+    sel = np.flatnonzero(twin_index[y] != y)
+    if len(sel) == 0:
+        return {"handed_clouds": 0, "twin_answer": None, "same_answer": None}
+    xs, ns = x[sel], nrm[sel]
+    rot = random_rotations(len(sel), generator=gen)
+    flip = xs.new_tensor([-1.0, 1.0, 1.0])
+    own = logits_under_poses(model, xs, rot, batch_size, ns).argmax(-1).numpy()
+    mirrored = logits_under_poses(model, xs * flip, rot, batch_size, ns * flip).argmax(-1).numpy()
+    # an achiral answer is its own twin: only a handed answer swapped for its twin counts
+    swapped = (mirrored == twin_index[own]) & (twin_index[own] != own)
+    return {"handed_clouds": int(len(sel)), "twin_answer": float(swapped.mean()),
+            "same_answer": float((mirrored == own).mean())}
 
 
 def _kind_score(pred: np.ndarray, target: np.ndarray, classes, handed) -> dict | None:

@@ -1,15 +1,23 @@
-"""Reports: Markdown tables and plots written from ``metrics.json`` results."""
+"""Reports: Markdown tables and plots written from ``metrics.json`` results.
+
+Every ``report.md`` gets a ``report.html`` beside it with the same content: one static page, its
+plots embedded as base64 PNG and its style inline, so it opens from disk with no network.
+"""
 
 from __future__ import annotations
 
+import base64
+import html
 import os
+import re
 from pathlib import Path
 
 import numpy as np
 
 from shapes._atomic import atomic_path, write_text
 
-__all__ = ["run_report", "comparison_report", "plot_confusion", "plot_angle_sweep"]
+__all__ = ["run_report", "comparison_report", "plot_confusion", "plot_angle_sweep", "plot_reliability",
+           "markdown_to_html", "write_report", "pyplot", "save_figure"]
 
 REGIME_NOTES = {
     "cad": "as modelled in CAD",
@@ -27,13 +35,73 @@ def _sci(v) -> str:
     return "–" if v is None else f"{v:.1e}"
 
 
+def _num(v, digits: int = 3) -> str:
+    return "–" if v is None else f"{v:.{digits}f}"
+
+
+def pyplot():
+    """matplotlib's pyplot on the file-only Agg backend (no display needed)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def save_figure(fig, path: str | os.PathLike) -> Path:
+    """Lay out, write atomically as PNG and close a figure."""
+    fig.tight_layout()
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, dpi=110)
+    pyplot().close(fig)
+    return Path(path)
+
+
 def regime_table(metrics: dict) -> str:
-    rows = ["| test poses | accuracy | balanced | handed classes | achiral classes |",
-            "|---|---|---|---|---|"]
+    rows = ["| test poses | accuracy | balanced | handed classes | achiral classes | calibration error | "
+            "pose consistency |", "|---|---|---|---|---|---|---|"]
     for regime, m in metrics["regimes"].items():
         rows.append(f"| {regime} ({REGIME_NOTES.get(regime, '')}) | {_pct(m['accuracy'])} | "
-                    f"{_pct(m['balanced_accuracy'])} | {_pct(m['handed_accuracy'])} | {_pct(m['achiral_accuracy'])} |")
+                    f"{_pct(m['balanced_accuracy'])} | {_pct(m['handed_accuracy'])} | {_pct(m['achiral_accuracy'])} | "
+                    f"{_num(m.get('ece'))} | {_pct(m.get('pose_consistency'))} |")
     return "\n".join(rows)
+
+
+def hand_note(metrics: dict) -> str:
+    """One sentence on whether the run tells a handed part from its mirror twin, from the numbers."""
+    mirrored = metrics["regimes"].get("mirrored", {})
+    handed = mirrored.get("handed_accuracy")
+    reflection = metrics.get("invariance", {}).get("reflection")
+    if handed is None or reflection is None:
+        return ""
+    hand = metrics.get("hand") or {}
+    pair = ""
+    if hand.get("handed_clouds"):
+        pair = (f" Each of the {hand['handed_clouds']} handed test clouds beside its own mirror image: the mirror image "
+                f"got the same answer as the part in {_pct(hand['same_answer'])} of them and the mirror twin of that "
+                f"answer in {_pct(hand['twin_answer'])}.")
+    if reflection < 1e-3:
+        return (f"**Blind to hand.** Its outputs change by {_sci(reflection)} under a reflection, so it answers a "
+                "mirror image exactly as the part itself: a mirrored handed part is named as the original, not as "
+                f"its twin (the handed classes score {_pct(handed)} under mirrored test poses)." + pair)
+    return (f"**Sees hand.** Its outputs change by {_sci(reflection)} under a reflection; under mirrored test poses "
+            f"the handed classes (which must be named as their twin) score {_pct(handed)}." + pair)
+
+
+def cost_line(metrics: dict) -> str:
+    """Training wall time, threads, parameters and inference throughput of a run, as one sentence."""
+    c = metrics.get("cost")
+    if not c:
+        return ""
+    secs = "–" if c.get("train_seconds") is None else f"{c['train_seconds']:.0f} s"
+    threads = c.get("train_threads") or "torch's default"
+    rate = "–" if c.get("parts_per_second") is None else f"{c['parts_per_second']:.0f}"
+    epochs = c.get("train_epochs")
+    return (f"Cost: training {secs} of wall time ({epochs or '–'} epoch{'' if epochs == 1 else 's'}, threads: {threads}"
+            + (f", budget {c['max_minutes']:g} min" if c.get("max_minutes") else "")
+            + f"); {c['parameters']:,} learned numbers; inference {rate} parts/s "
+            f"({c['eval_threads']} threads, batches of {c['inference_batch_size']}).")
 
 
 def scans_table(runs: dict[str, dict]) -> str:
@@ -61,11 +129,7 @@ def per_class_table(metrics: dict) -> str:
 
 
 def plot_confusion(metrics: dict, regime: str, path: str | os.PathLike) -> Path:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     cm = np.asarray(metrics["regimes"][regime]["confusion"], dtype=float)
     cm = cm / np.clip(cm.sum(1, keepdims=True), 1, None)
     names = metrics["classes"]
@@ -77,19 +141,33 @@ def plot_confusion(metrics: dict, regime: str, path: str | os.PathLike) -> Path:
     ax.set_ylabel("expected")
     ax.set_title(f"{metrics['backbone']['name']}: {regime} test poses (row-normalised)")
     fig.colorbar(im, ax=ax, fraction=0.04)
-    fig.tight_layout()
-    with atomic_path(path) as tmp:
-        fig.savefig(tmp, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return save_figure(fig, path)
+
+
+def plot_reliability(metrics: dict, path: str | os.PathLike) -> Path:
+    """Reliability diagram: accuracy against confidence per bin, one line per pose regime."""
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(4.8, 4.2))
+    ax.plot([0, 1], [0, 1], color="0.6", lw=1, ls="--", label="calibrated")
+    for regime, m in metrics["regimes"].items():
+        curve = m.get("reliability")
+        if not curve:
+            continue
+        pts = [(c, a) for c, a in zip(curve["confidence"], curve["accuracy"]) if c is not None]
+        if pts:
+            ax.plot(*zip(*pts), marker="o", label=f"{regime} (error {m['ece']:.3f})")
+    ax.set_xlabel("confidence (top-class probability)")
+    ax.set_ylabel("accuracy in the bin")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1.02)
+    ax.set_title(f"{metrics['backbone']['name']}: reliability")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return save_figure(fig, path)
 
 
 def plot_angle_sweep(runs: dict[str, dict], path: str | os.PathLike) -> Path:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6, 3.8))
     for name, metrics in runs.items():
         sweep = metrics.get("angle_sweep")
@@ -100,11 +178,7 @@ def plot_angle_sweep(runs: dict[str, dict], path: str | os.PathLike) -> Path:
     ax.set_ylim(0, 102)
     ax.grid(alpha=0.3)
     ax.legend()
-    fig.tight_layout()
-    with atomic_path(path) as tmp:
-        fig.savefig(tmp, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return save_figure(fig, path)
 
 
 def _sweep_table(runs: dict[str, dict], key: str, label: str) -> str:
@@ -126,13 +200,21 @@ def run_report(metrics: dict, out_dir: str | os.PathLike) -> Path:
     for regime in ("any", "mirrored"):
         if regime in metrics["regimes"]:
             pngs.append(plot_confusion(metrics, regime, out_dir / f"confusion_{regime}.png").name)
+    if any("reliability" in m for m in metrics["regimes"].values()):
+        pngs.append(plot_reliability(metrics, out_dir / "reliability.png").name)
     inv = metrics["invariance"]
     text = [f"# Evaluation: `{name}` backbone (declared symmetry {metrics['backbone']['symmetry']})", "",
             f"Checkpoint `{metrics['checkpoint']}`, test data `{metrics['data']}`: {metrics['test_clouds']} clouds, "
             f"{metrics['repeats']} random poses each per regime.", "", regime_table(metrics), "",
+            "*calibration error*: expected calibration error of the top class's probability "
+            "(10 equal-width confidence bins); *pose consistency*: share of test clouds given the same answer "
+            "under every one of their random poses.", "",
             "Measured invariance (largest change of the logits, relative to the largest logit): "
             f"rotations {_sci(inv['rotation'])}, reflections {_sci(inv['reflection'])}, "
             f"translations {_sci(inv['translation'])}.", ""]
+    for line in (hand_note(metrics), cost_line(metrics)):
+        if line:
+            text += [line, ""]
     scans = scans_table({name: metrics})
     if scans:
         text += ["## Single-view scans", "", "The test split's virtual scans alone (one view each, normals as the "
@@ -145,7 +227,7 @@ def run_report(metrics: dict, out_dir: str | os.PathLike) -> Path:
         text += ["## Accuracy under sensor noise (uniform random poses; σ in RMS radii)", "",
                  _sweep_table({name: metrics}, "noise_sweep", "σ="), ""]
     text += [f"![confusion {p}]({p})" for p in pngs]
-    return write_text(out_dir / "report.md", "\n".join(text) + "\n")
+    return write_report(out_dir / "report.md", "\n".join(text) + "\n")
 
 
 def comparison_report(runs: dict[str, dict], out_dir: str | os.PathLike, *, title: str, preamble: str = "") -> Path:
@@ -175,4 +257,123 @@ def comparison_report(runs: dict[str, dict], out_dir: str | os.PathLike, *, titl
              "## Accuracy under sensor noise (uniform random poses; σ in RMS radii)", "",
              _sweep_table(runs, "noise_sweep", "σ="), "", "## Per-run reports", ""]
     text += [f"- `{n}`: [{n}/report.md]({n}/report.md)" for n in runs]
-    return write_text(out_dir / "report.md", "\n".join(text) + "\n")
+    return write_report(out_dir / "report.md", "\n".join(text) + "\n")
+
+
+# -- the HTML page -------------------------------------------------------------------------
+
+_STYLE = """
+body { font-family: sans-serif; max-width: 96rem; margin: 2rem auto; padding: 0 1rem; color: #1b1b1b; line-height: 1.45; }
+table { border-collapse: collapse; margin: 0.8rem 0; font-size: 0.9rem; }
+th, td { border: 1px solid #c8c8c8; padding: 0.25rem 0.55rem; text-align: left; vertical-align: top; }
+td { white-space: nowrap; }
+.wide { overflow-x: auto; }
+th { background: #eef1f4; }
+tr:nth-child(even) td { background: #f8f9fa; }
+code { background: #f1f1f1; padding: 0 0.2rem; border-radius: 3px; }
+img { max-width: 100%; display: block; margin: 0.8rem 0; }
+h1 { font-size: 1.5rem; } h2 { font-size: 1.2rem; margin-top: 2rem; } h3 { font-size: 1.05rem; }
+"""
+
+_INLINE = re.compile(r"`([^`]+)`|\*\*([^*]+)\*\*|\*([^*]+)\*|\[([^\]]+)\]\(([^)\s]+)\)")
+
+
+def _inline(text: str) -> str:
+    """Escape ``text`` and turn the inline Markdown the reports use (code, bold, emphasis, links) into HTML."""
+    out, last = [], 0
+    for m in _INLINE.finditer(text):
+        out.append(html.escape(text[last:m.start()]))
+        code, bold, em, label, href = m.groups()
+        if code is not None:
+            out.append(f"<code>{html.escape(code)}</code>")
+        elif bold is not None:
+            out.append(f"<strong>{_inline(bold)}</strong>")
+        elif em is not None:
+            out.append(f"<em>{_inline(em)}</em>")
+        else:
+            if href.endswith(".md") and "://" not in href:
+                href = href[:-3] + ".html"  # a report links its sibling reports' pages
+            out.append(f'<a href="{html.escape(href)}">{_inline(label)}</a>')
+        last = m.end()
+    out.append(html.escape(text[last:]))
+    return "".join(out)
+
+
+def _cells(line: str) -> list[str]:
+    return [c.strip() for c in line.strip().strip("|").split("|")]
+
+
+def _image(alt: str, src: str, base: Path) -> str:
+    """An ``<img>`` with the PNG inlined as a data URI; a missing file becomes a line of text."""
+    path = base / src
+    if not path.is_file():
+        return f"<p>(plot {html.escape(src)} is missing)</p>"
+    data = base64.b64encode(path.read_bytes()).decode("ascii")
+    return f'<img alt="{html.escape(alt)}" src="data:image/png;base64,{data}">'
+
+
+def markdown_to_html(text: str, base: str | os.PathLike, title: str | None = None) -> str:
+    """One self-contained HTML page from the Markdown the reports write.
+
+    Handles what they use: ``#`` headings, paragraphs, pipe tables (a header row, then a ``|---|``
+    row), ``- `` lists, images on a line of their own (embedded from ``base`` as base64 PNG), and
+    inline code, bold, emphasis and links (a link to a sibling ``.md`` points at its ``.html``).
+    """
+    base = Path(base)
+    lines = text.splitlines()
+    body: list[str] = []
+    paragraph: list[str] = []
+
+    def flush() -> None:
+        if paragraph:
+            body.append(f"<p>{_inline(' '.join(paragraph))}</p>")
+            paragraph.clear()
+
+    i = 0
+    while i < len(lines):
+        line = lines[i].rstrip()
+        image = re.fullmatch(r"!\[([^\]]*)\]\(([^)\s]+)\)", line.strip())
+        if not line.strip():
+            flush()
+        elif line.startswith("#"):
+            flush()
+            level = min(len(line) - len(line.lstrip("#")), 6)
+            body.append(f"<h{level}>{_inline(line[level:].strip())}</h{level}>")
+        elif image:
+            flush()
+            body.append(_image(image.group(1), image.group(2), base))
+        elif line.startswith("|") and i + 1 < len(lines) and re.fullmatch(r"\|?[\s:|-]+\|?", lines[i + 1].strip()):
+            flush()
+            rows = ["<tr>" + "".join(f"<th>{_inline(c)}</th>" for c in _cells(line)) + "</tr>"]
+            i += 2
+            while i < len(lines) and lines[i].strip().startswith("|"):
+                rows.append("<tr>" + "".join(f"<td>{_inline(c)}</td>" for c in _cells(lines[i])) + "</tr>")
+                i += 1
+            body.append('<div class="wide"><table>\n' + "\n".join(rows) + "\n</table></div>")
+            continue
+        elif line.lstrip().startswith("- "):
+            flush()
+            items = []
+            while i < len(lines) and lines[i].lstrip().startswith("- "):
+                items.append(f"<li>{_inline(lines[i].lstrip()[2:].strip())}</li>")
+                i += 1
+            body.append("<ul>\n" + "\n".join(items) + "\n</ul>")
+            continue
+        else:
+            paragraph.append(line.strip())
+        i += 1
+    flush()
+    if title is None:
+        first = next((ln for ln in lines if ln.startswith("# ")), "# report")
+        title = re.sub(r"[`*]", "", first[2:]).strip()
+    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
+            f"<title>{html.escape(title)}</title>\n<style>{_STYLE}</style>\n</head>\n<body>\n"
+            + "\n".join(body) + "\n</body>\n</html>\n")
+
+
+def write_report(path: str | os.PathLike, text: str) -> Path:
+    """Write the Markdown report ``path`` and, beside it, the same content as a static HTML page
+    (same name, ``.html``) with its plots embedded. Returns the Markdown path."""
+    path = Path(path)
+    write_text(path.with_suffix(".html"), markdown_to_html(text, path.parent))
+    return write_text(path, text)
