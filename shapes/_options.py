@@ -26,7 +26,7 @@ SPLITS = ("train", "val", "test")
 VERB_SECTIONS: dict[str, tuple[str, ...]] = {
     "parts": ("parts", "seed", "meshes"),
     "sample": ("sample", "seed", "meshes", "data"),
-    "train": ("train", "seed", "data"),
+    "train": ("train", "seed", "data", "resume"),
     "eval": ("eval", "seed", "run", "allow_unfinished"),
     "compare": ("compare",),
     "predict": ("predict", "seed", "run", "allow_unfinished"),
@@ -118,6 +118,8 @@ RULES = {
     "train.threads": _threads,
     "train.device": lambda n, v: check.choice(n, v, ("cpu", "cuda", "auto")),
     "train.max_minutes": lambda n, v: check.optional(check.number, n, v, low=0, low_open=True),
+    "train.save_every": lambda n, v: check.optional(check.integer, n, v, low=1),
+    "resume": lambda n, v: check.optional(check.text, n, v),
     # eval
     "eval.poses": lambda n, v: eval_poses(v),
     "eval.repeats": _positive_int,

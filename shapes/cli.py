@@ -33,7 +33,7 @@ VERBS: dict[str, str] = {
 SECTIONS: dict[str, tuple[str, ...]] = {
     "parts": ("parts", "seed"),
     "sample": ("meshes", "data", "sample", "seed"),
-    "train": ("backbone", "data", "train", "seed"),
+    "train": ("backbone", "data", "train", "seed", "resume"),
     "eval": ("run", "eval", "seed"),
     "compare": ("compare",),
     "demo": ("meshes", "demo", "seed"),
@@ -228,6 +228,9 @@ def _run_train(cfg) -> None:
     from hydra.core.hydra_config import HydraConfig
     from omegaconf import OmegaConf
 
+    if cfg.get("resume"):
+        return _resume_train(cfg)
+
     from shapes._atomic import write_text
     from shapes._runtime import set_threads
     from shapes.seeding import seed_everything
@@ -254,6 +257,37 @@ def _run_train(cfg) -> None:
     if int(os.environ.get("RANK", "0")) != 0:
         return  # under torchrun only the first process writes and reports
     write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))
+    print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
+
+
+def _resume_train(cfg) -> None:
+    """``shapes train resume=RUN_DIR``: go on from the run's resume.pt with its own options and backbone
+    (``train.threads`` and ``train.device`` may be given anew), in its own folder."""
+    from hydra.core.hydra_config import HydraConfig
+    from omegaconf import OmegaConf
+
+    from shapes._atomic import write_text
+    from shapes._runtime import set_threads
+    from shapes.backbones import build_backbone
+    from shapes.seeding import seed_everything
+    from shapes.train import TrainSettings, check_settings, read_resume_state, train_classifier
+
+    run_dir = Path(cfg.resume)
+    state = read_resume_state(run_dir)
+    given = {o.split("=", 1)[0].lstrip("+~") for o in HydraConfig.get().overrides.task}
+    recorded = dict(state["settings"])
+    recorded.update({key: cfg.train[key] for key in ("threads", "device") if f"train.{key}" in given})
+    settings = check_settings(TrainSettings(**recorded))
+    set_threads(settings.threads)
+    seed_everything(settings.seed)
+    backbone = build_backbone(state["meta"]["backbone"]["name"], **state["meta"]["backbone"]["options"])
+    print(f"resuming {run_dir} at epoch {state['epoch'] + state['epoch_done']}, step {state['step']}", flush=True)
+    ckpt = train_classifier(backbone, state["data"], run_dir, settings, resume=True)
+    if int(os.environ.get("RANK", "0")) != 0:
+        return
+    config = settings.extra.get("config")
+    if isinstance(config, dict):
+        write_text(run_dir / "config.yaml", OmegaConf.to_yaml(OmegaConf.create(config)))
     print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
 
 
@@ -382,6 +416,15 @@ def main(argv: list[str] | None = None) -> int:
     overrides = [a for a in overrides if a not in positional]
     if verb == "compare" and not positional and not ({"-h", "--help"} & set(flags)):
         return _error("shapes compare needs run folders: shapes compare RUN_DIR... (a sweep folder counts as its runs).")
+    resume = [a.split("=", 1)[1] for a in overrides if a.startswith("resume=") and a != "resume=null"]
+    if verb == "train" and resume:  # the run's own options, in the run's own folder
+        others = [a for a in overrides if not a.startswith(("resume=", "train.threads=", "train.device="))]
+        if others or "-m" in flags or "--multirun" in flags:
+            return _error(f"resume={resume[-1]} goes on with the run's own options; '{(others or ['-m'])[0]}' cannot "
+                          "be given with it (only train.threads and train.device can).")
+        if not Path(resume[-1]).is_dir():
+            return _error(f"resume={resume[-1]}: no such run folder; expected a folder written by `shapes train`.")
+        overrides.append(f"hydra.run.dir={resume[-1]}")
     bad = [f for f in flags if f not in FLAGS]
     if bad:
         return _error(f"unknown flag {bad[0]}; expected key=value overrides or one of {', '.join(sorted(FLAGS))}.")

@@ -3,12 +3,24 @@
 ``train_classifier`` takes plain arguments and can be called from a notebook; the command line
 (``shapes train``) builds the backbone from config and calls it. Under ``torchrun`` with more
 than one process the model is wrapped in DistributedDataParallel (gloo on CPU).
+
+Resuming: ``resume.pt`` in the run folder holds everything the loop needs to go on as if it had
+never stopped (weights, optimiser, the random-number states of Python, numpy and torch and the
+run's own generator, the epoch's order and position in it, the step, the time spent, the history
+and the best so far). It is written every ``save_every`` steps, at the end of every epoch and when
+Ctrl-C or SIGTERM stop the run; each step runs with those signals held, so a stop always falls
+between two steps. ``train_classifier(..., resume=True)`` (``shapes train resume=RUN_DIR``) goes on
+from it, and on one thread with deterministic kernels it ends with the same weights, bit for bit,
+as a run that was never stopped. A run killed outright (SIGKILL, power cut) loses the steps after
+the last ``resume.pt``; they are done again the same way.
 """
 
 from __future__ import annotations
 
+import json
 import math
 import os
+import random
 import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -22,14 +34,16 @@ from shapes._atomic import atomic_path, signals_deferred, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
-from shapes.errors import Interrupted, TrainingError
+from shapes.errors import ConfigError, DataError, Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.seeding import seed_everything, torch_generator
 
 __all__ = ["TrainSettings", "check_settings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins",
-           "CHECKPOINT"]
+           "read_resume_state", "CHECKPOINT", "RESUME"]
 
 CHECKPOINT = "checkpoint.pt"
+RESUME = "resume.pt"  # the latest state of the loop, for `shapes train resume=RUN_DIR`
+RESUMABLE = ("threads", "device")  # settings a resumed run may change (the others must be the run's own)
 
 TRAIN_REGIMES = POSE_REGIMES[:3]  # a mirrored training pose would teach a handed part its twin's shape
 
@@ -53,6 +67,8 @@ class TrainSettings:
     device: str = "cpu"  # cpu | cuda | auto
     max_minutes: float | None = None  # a wall-time budget: the learning rate anneals to 0 by then and
     # training stops there, keeping the best checkpoint (epochs is then an upper bound)
+    save_every: int | None = None  # steps between resumable states (resume.pt) besides the one at each
+    # epoch's end; None: per epoch only (a state costs about three copies of the weights on disk)
     extra: dict = field(default_factory=dict)  # free-form metadata stored in the checkpoint (e.g. resolved config)
 
 
@@ -72,6 +88,7 @@ def check_settings(s: TrainSettings) -> TrainSettings:
     check.optional(check.integer, "train.threads", s.threads, low=1)
     check.choice("train.device", s.device, ("cpu", "cuda", "auto"))
     check.optional(check.number, "train.max_minutes", s.max_minutes, low=0, low_open=True)
+    check.optional(check.integer, "train.save_every", s.save_every, low=1)
     if not isinstance(s.extra, dict):
         check.fail("extra", "a dict of metadata", repr(s.extra))
     return s
@@ -139,21 +156,98 @@ def save_checkpoint(path: Path, model: Classifier, meta: dict) -> Path:
     return path
 
 
+def _rng_states(gen: torch.Generator, device: torch.device) -> dict:
+    """Every random-number state the loop draws from, as tensors and plain data (``weights_only`` loads them)."""
+    name, keys, pos, has_gauss, cached = np.random.get_state()
+    return {"python": random.getstate(), "numpy": [name, keys.tolist(), int(pos), int(has_gauss), float(cached)],
+            "torch": torch.get_rng_state(), "generator": gen.get_state(),
+            "cuda": torch.cuda.get_rng_state_all() if device.type == "cuda" else None}
+
+
+def _set_rng_states(states: dict, gen: torch.Generator, device: torch.device) -> None:
+    version, internal, gauss = states["python"]
+    random.setstate((version, tuple(internal), gauss))
+    name, keys, pos, has_gauss, cached = states["numpy"]
+    np.random.set_state((name, np.asarray(keys, dtype=np.uint32), pos, has_gauss, cached))
+    torch.set_rng_state(states["torch"])
+    gen.set_state(states["generator"])
+    if device.type == "cuda" and states.get("cuda") is not None:
+        torch.cuda.set_rng_state_all(states["cuda"])
+
+
+def read_resume_state(run_dir: str | os.PathLike) -> dict:
+    """The ``resume.pt`` of a run folder (``weights_only=True``); one DataError line when it is
+    missing or unreadable, or when the run cannot go on (it finished, or diverged)."""
+    run_dir = Path(run_dir)
+    path = run_dir / RESUME
+    if not run_dir.is_dir():
+        raise DataError(f"resume={run_dir}: no such run folder; expected a folder written by `shapes train`.")
+    if not path.is_file():
+        raise DataError(f"resume={run_dir}: the folder has no {RESUME} (written by `shapes train` at the end of "
+                        "each epoch, every train.save_every steps and when stopped); it cannot be resumed.")
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+        version = state["format"]
+    except Exception as exc:  # torch's unpickling errors are many and multi-line
+        first = " ".join(str(exc).split())[:200] or type(exc).__name__
+        raise DataError(f"resume={run_dir}: {RESUME} cannot be read ({type(exc).__name__}: {first}).") from None
+    if version != 1:
+        raise DataError(f"resume={run_dir}: {RESUME} has format {version!r}; expected 1.")
+    status = state.get("status")
+    try:  # the record says diverged even when the state was written before the loss went
+        status = json.loads((run_dir / "train_history.json").read_text()).get("status", status)
+    except (OSError, ValueError, AttributeError):
+        pass
+    if status == "complete":
+        raise DataError(f"resume={run_dir}: the run is complete (all {state['settings']['epochs']} epochs or its "
+                        "time budget); nothing to resume. Evaluate it with `shapes eval`.")
+    if status == "diverged":
+        raise DataError(f"resume={run_dir}: the run diverged (a non-finite loss), and resuming would diverge the "
+                        "same way; retrain with a lower train.lr.")
+    return state
+
+
+def _check_resumable(state: dict, s: TrainSettings, backbone: Backbone, world: int, n_train: int) -> None:
+    """ConfigError naming the first thing that differs between the run's state and this call."""
+    theirs, ours = state["settings"], asdict(s)
+    for key in ours:
+        if key not in RESUMABLE and key != "extra" and theirs.get(key) != ours[key]:
+            raise ConfigError(f"train.{key} is {ours[key]!r} but the run being resumed has {theirs.get(key)!r}; "
+                              "a resumed run keeps its own options (only train.threads and train.device may change).")
+    recorded = state["meta"]["backbone"]
+    if recorded["name"] != backbone.name or recorded["options"] != backbone.config_dict():
+        raise ConfigError(f"the backbone differs from the run being resumed ({recorded['name']} with "
+                          f"{recorded['options']}); a resumed run keeps its own backbone.")
+    if state["world"] != world:
+        raise ConfigError(f"the run was trained by {state['world']} process(es), this is {world}; resume it with "
+                          "as many (the order of the clouds is split between them).")
+    if state["train_clouds"] != n_train:
+        raise DataError(f"the dataset holds {n_train} training clouds, the run being resumed was trained on "
+                        f"{state['train_clouds']}; resume it on the same dataset.")
+
+
 def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: str | os.PathLike,
-                     settings: TrainSettings | None = None) -> Path:
+                     settings: TrainSettings | None = None, resume: bool = False) -> Path:
     """Train ``backbone`` + head on the shards in ``data_dir``; write the best checkpoint to ``run_dir``.
 
     Returns the checkpoint path. Files written: ``checkpoint.pt`` (best validation accuracy),
-    ``train_history.json`` (one row per epoch, and ``status``: complete, interrupted or diverged). Both
-    are renamed into place when complete. A non-finite loss or weights raise :class:`TrainingError`
-    and a Ctrl-C :class:`shapes.errors.Interrupted`; either way the last good checkpoint is kept.
+    ``train_history.json`` (one row per epoch, and ``status``: complete, interrupted or diverged; it
+    says interrupted while training is under way, so a run killed outright stays so) and
+    ``resume.pt`` (the loop's latest state; see the module's docstring). All are renamed into place
+    when complete. A non-finite loss or weights raise :class:`TrainingError` and a Ctrl-C
+    :class:`shapes.errors.Interrupted`; either way the last good checkpoint is kept.
+
+    ``resume=True`` goes on from ``run_dir/resume.pt``: the backbone, the dataset and the settings
+    must be the run's own (only ``threads`` and ``device`` may differ); the weights the backbone was
+    built with are replaced by the saved ones.
     """
     s = check_settings(settings or TrainSettings())
+    run_dir = Path(run_dir)
+    state = read_resume_state(run_dir) if resume else None
     set_threads(s.threads)
     seed_everything(s.seed)  # the head's weights; the caller seeds before building the backbone
     device = choose_device(s.device)
     rank, world = _distributed()
-    run_dir = Path(run_dir)
     meta = read_meta(data_dir)
     train, val = load_split(data_dir, "train"), load_split(data_dir, "val")
     x_train = torch.as_tensor(train.points, dtype=torch.float32, device=device)
@@ -164,6 +258,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     n_val = torch.as_tensor(val.normals, dtype=torch.float32, device=device)
     classes = list(meta["classes"])
     twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes], device=device)  # (C,)
+    if state is not None:
+        _check_resumable(state, s, backbone, world, len(x_train))
 
     model = Classifier(backbone, len(meta["classes"]), hidden=s.head_hidden, dropout=s.dropout).to(device)
     net = nn.parallel.DistributedDataParallel(model) if world > 1 else model
@@ -191,32 +287,64 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     history, best, started, step, out_of_time = [], (-1.0, -math.inf), time.perf_counter(), 0, False
     ckpt = run_dir / CHECKPOINT
     epoch, saved = 0, None  # the epoch under way, the epoch of the checkpoint on disk
+    # where the loop stands: the epoch's full permutation, the next batch's place in this rank's
+    # share of it, the losses so far, and whether the epoch's end (validation, records) is done
+    perm, position, losses, epoch_done, first = None, 0, [], True, 1
+    if state is not None:
+        model.load_state_dict(state["model"])
+        opt.load_state_dict(state["optimizer"])
+        checkpoint_meta = state["meta"]  # the run's own record (its config, its versions)
+        history, best, saved, step = list(state["history"]), tuple(state["best"]), state["saved"], state["step"]
+        started = time.perf_counter() - state["elapsed"]
+        epoch, epoch_done = state["epoch"], state["epoch_done"]
+        if not epoch_done:
+            perm, position, losses = state["perm"], state["position"], list(state["losses"])
+        first = epoch + 1 if epoch_done else epoch
+        _set_rng_states(state["rng"], gen, device)  # last: building the model above drew from them
 
     def kept() -> str:
         return (f"the best checkpoint so far (epoch {saved}) is kept at {ckpt}" if saved
                 else "no checkpoint was written")
 
     def write_history(status: str) -> None:
-        """``train_history.json`` with the run's status: running, complete, interrupted or diverged
-        (``run=latest`` passes over the last two)."""
+        """``train_history.json`` with the run's status: complete, interrupted (also while training is
+        under way) or diverged (``run=latest`` passes over the last two)."""
         if rank == 0 and (history or saved):
             write_json(run_dir / "train_history.json", {"status": status, "history": history,
                                                         "best_val_accuracy": best[0], "best_epoch": saved,
                                                         "wall_seconds": time.perf_counter() - started})
+
+    def save_state(status: str) -> None:
+        """``resume.pt``: the loop as it stands between two steps (rank 0 writes it)."""
+        if rank != 0:
+            return
+        payload = {"format": 1, "status": status, "epoch": epoch, "epoch_done": epoch_done,
+                   "perm": None if epoch_done else perm.cpu(), "position": position,
+                   "losses": list(losses), "step": step, "elapsed": time.perf_counter() - started,
+                   "history": history, "best": list(best), "saved": saved,
+                   "model": {k: v.detach().cpu() for k, v in model.state_dict().items()},
+                   "optimizer": opt.state_dict(), "rng": _rng_states(gen, device),
+                   "settings": asdict(s), "meta": checkpoint_meta, "world": world, "train_clouds": len(x_train),
+                   "data": os.path.abspath(data_dir)}
+        with atomic_path(run_dir / RESUME) as tmp:
+            torch.save(payload, tmp)
 
     def diverged(what: str) -> TrainingError:
         return TrainingError(f"training diverged in epoch {epoch}, step {step + 1}: {what} "
                              f"(train.lr={s.lr:g}; expected a finite loss, lower train.lr); {kept()}.")
 
     try:
-        for epoch in range(1, s.epochs + 1):
+        for epoch in range(first, s.epochs + 1):
             net.train()
-            order = torch.randperm(len(x_train), generator=gen)
+            if epoch_done:  # a new epoch (not one resumed part-way)
+                with signals_deferred():
+                    perm = torch.randperm(len(x_train), generator=gen)
+                    position, losses, epoch_done = 0, [], False
             # every rank takes the same permutation (same seed) and an equal share, so DDP's
             # gradient all-reduce sees the same number of steps on each rank
-            order = order[: len(order) // world * world][rank::world].to(device)
-            losses, t0 = [], time.perf_counter()
-            for start in progress(range(0, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
+            order = perm[: len(perm) // world * world][rank::world].to(device)
+            t0 = time.perf_counter()
+            for start in progress(range(position, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
                 elapsed = time.perf_counter() - started
                 if world > 1:  # every rank must take the same number of steps: rank 0's clock decides
                     flag = torch.tensor([float(elapsed)], device=device)
@@ -226,27 +354,31 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 if progress_done >= 1.0 and step > 0:  # at least one step, so there is a checkpoint
                     out_of_time = True
                     break
-                for group in opt.param_groups:
-                    group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
-                idx = order[start:start + s.batch_size]
-                rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
-                x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
-                n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
-                if s.mirror > 0:
-                    chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
-                    n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
-                    x, y = reflect_to_twins(x, y, twin_of, chosen)
-                if s.jitter > 0:
-                    x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
-                loss = loss_fn(net(x, None, n), y)
-                if not bool(torch.isfinite(loss.detach())):  # every rank sees its own; DDP keeps weights equal
-                    raise diverged(f"the loss is {float(loss.detach())}")
-                opt.zero_grad(set_to_none=True)
-                loss.backward()
-                nn.utils.clip_grad_norm_(model.parameters(), 5.0)
-                opt.step()
-                step += 1
-                losses.append(float(loss.detach()))
+                with signals_deferred():  # Ctrl-C and SIGTERM land between steps, never inside one
+                    for group in opt.param_groups:
+                        group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
+                    idx = order[start:start + s.batch_size]
+                    rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
+                    x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
+                    n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
+                    if s.mirror > 0:
+                        chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
+                        n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
+                        x, y = reflect_to_twins(x, y, twin_of, chosen)
+                    if s.jitter > 0:
+                        x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
+                    loss = loss_fn(net(x, None, n), y)
+                    if not bool(torch.isfinite(loss.detach())):  # every rank sees its own; DDP keeps weights equal
+                        raise diverged(f"the loss is {float(loss.detach())}")
+                    opt.zero_grad(set_to_none=True)
+                    loss.backward()
+                    nn.utils.clip_grad_norm_(model.parameters(), 5.0)
+                    opt.step()
+                    step += 1
+                    position = start + s.batch_size
+                    losses.append(float(loss.detach()))
+                    if s.save_every and step % s.save_every == 0:
+                        save_state("interrupted")
             if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
                 break
             if not _finite_weights(model):  # the last step of the epoch overflowed: never save it
@@ -257,18 +389,21 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 raise diverged(f"the validation loss is {val_loss}")
             row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
                    "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
-            history.append(row)
-            if rank == 0:
-                print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f} (loss {val_loss:.3f})  "
-                      f"({row['seconds']:.1f} s)", flush=True)
-                # the validation split is small: among equal accuracies the lower loss is the surer model
-                if (val_acc, -val_loss) > best:
-                    best = (val_acc, -val_loss)
-                    with signals_deferred():  # the checkpoint on disk and the record of it change together
+            last = out_of_time or epoch == s.epochs
+            with signals_deferred():  # the records, the checkpoint and the state change together
+                history.append(row)
+                epoch_done = True
+                if rank == 0:
+                    print(f"epoch {epoch:3d}  loss {row['loss']:.4f}  val {val_acc:.3f} (loss {val_loss:.3f})  "
+                          f"({row['seconds']:.1f} s)", flush=True)
+                    # the validation split is small: among equal accuracies the lower loss is the surer model
+                    if (val_acc, -val_loss) > best:
+                        best = (val_acc, -val_loss)
                         save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
                                                       "val_loss": val_loss})
                         saved = epoch
-                write_history("running")
+                save_state("complete" if last else "interrupted")
+                write_history("complete" if last else "interrupted")
             if out_of_time:
                 if rank == 0:
                     print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
@@ -278,11 +413,16 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         write_history("diverged")
         raise
     except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM turned into Interrupted by the command line
-        write_history("interrupted")
+        with signals_deferred():
+            save_state("interrupted")
+            write_history("interrupted")
         status = getattr(exc, "status", 130)
         how = "SIGTERM" if status == 143 else "Ctrl-C"
-        raise Interrupted(f"training interrupted by {how} in epoch {epoch}; {kept()}.", status) from None
-    write_history("complete")
+        raise Interrupted(f"training interrupted by {how} in epoch {epoch}; {kept()}; continue it with "
+                          f"`shapes train resume={run_dir}`.", status) from None
+    with signals_deferred():  # also when the budget ran out at the start of an epoch
+        save_state("complete")
+        write_history("complete")
     if world > 1:
         torch.distributed.barrier()
     return ckpt

@@ -12,16 +12,11 @@ import torch
 
 from shapes.cli import main
 
-REPO = Path(__file__).resolve().parent.parent
-DEMO = REPO / "demo_meshes"
 
 
-@pytest.fixture(scope="module")
-def tiny_data(tmp_path_factory):
-    root = tmp_path_factory.mktemp("interrupt")
-    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64", "sample.mode=surface",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
-    return root / "data"
+@pytest.fixture
+def tiny_data(tiny_surface_data):
+    return tiny_surface_data
 
 
 @pytest.mark.slow

@@ -16,8 +16,6 @@ from shapes._atomic import atomic_dir, atomic_path, write_json
 from shapes.cli import main
 from shapes.errors import ConfigError, InputError, TrainingError
 
-REPO = Path(__file__).resolve().parent.parent
-DEMO = REPO / "demo_meshes"
 TINY_TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=2",
               "train.batch_size=32", "train.threads=1", "hydra.run.dir=run"]
 
@@ -28,12 +26,9 @@ def one_error_line(capsys) -> str:
     return err[0]
 
 
-@pytest.fixture(scope="module")
-def tiny_data(tmp_path_factory):
-    root = tmp_path_factory.mktemp("trust")
-    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64", "sample.mode=surface",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
-    return root / "data"
+@pytest.fixture
+def tiny_data(tiny_surface_data):
+    return tiny_surface_data
 
 
 def _weights_hash(ckpt: Path) -> str:
