@@ -254,8 +254,10 @@ def _run_train(cfg) -> None:
         if run_dir.is_dir() and not any(run_dir.iterdir()):
             run_dir.rmdir()  # Hydra made the folder before the job failed: leave nothing behind
         raise
-    if int(os.environ.get("RANK", "0")) != 0:
-        return  # under torchrun only the first process writes and reports
+    if int(os.environ.get("RANK", "0")) != 0:  # under torchrun only the first process writes and reports
+        if run_dir.is_dir() and not any(run_dir.iterdir()):
+            run_dir.rmdir()  # Hydra made a folder of this process's own (another second than rank 0's)
+        return
     write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))
     print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
 

@@ -8,8 +8,9 @@ Resuming: ``resume.pt`` in the run folder holds everything the loop needs to go 
 never stopped (weights, optimiser, the random-number states of Python, numpy and torch and the
 run's own generator, the epoch's order and position in it, the step, the time spent, the history
 and the best so far). It is written every ``save_every`` steps, at the end of every epoch and when
-Ctrl-C or SIGTERM stop the run; each step runs with those signals held, so a stop always falls
-between two steps. ``train_classifier(..., resume=True)`` (``shapes train resume=RUN_DIR``) goes on
+Ctrl-C or SIGTERM stop the run. While the loop runs those signals are only noted, and acted on
+before the next step (a validation under way finishes first), so a stop always falls between two
+steps; a second one stops at once, without a new ``resume.pt``. ``train_classifier(..., resume=True)`` (``shapes train resume=RUN_DIR``) goes on
 from it, and on one thread with deterministic kernels it ends with the same weights, bit for bit,
 as a run that was never stopped. A run killed outright (SIGKILL, power cut) loses the steps after
 the last ``resume.pt``; they are done again the same way.
@@ -21,6 +22,8 @@ import json
 import math
 import os
 import random
+import signal
+import threading
 import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -51,7 +54,8 @@ TRAIN_REGIMES = POSE_REGIMES[:3]  # a mirrored training pose would teach a hande
 @dataclass
 class TrainSettings:
     epochs: int = 30  # the demo catalog's small parts converge in 20-40 epochs
-    batch_size: int = 16  # small batches train faster per epoch on 2 cores and regularise
+    batch_size: int = 16  # small batches train faster per epoch on 2 cores and regularise; the global
+    # batch: under torchrun each of the W processes takes batch_size / W of it
     lr: float = 2e-3  # AdamW peak rate after warm-up
     weight_decay: float = 1e-4  # mild: the head is small, the data is clean
     warmup: float = 0.05  # fraction of steps with a linear ramp-up, so early large gradients don't derail
@@ -154,6 +158,41 @@ def save_checkpoint(path: Path, model: Classifier, meta: dict) -> Path:
     with atomic_path(path) as tmp:
         torch.save(payload, tmp)
     return path
+
+
+class _StopRequests:
+    """Ctrl-C and SIGTERM while training: noted, and acted on by :meth:`check` between two steps.
+
+    Signal masks cannot do this: a process-directed signal goes to any thread that does not block it
+    (torch keeps threads of its own), and Python then runs its handler in the main thread wherever
+    that thread is. A second signal stops at once (``hard``).
+    """
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+    def __init__(self):
+        self.status: int | None = None
+        self.hard = False
+        self._previous: dict = {}
+
+    def __enter__(self) -> "_StopRequests":
+        if threading.current_thread() is threading.main_thread():  # handlers can be set only there
+            self._previous = {sig: signal.signal(sig, self._note) for sig in self.SIGNALS}
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for sig, handler in self._previous.items():
+            signal.signal(sig, handler)
+
+    def _note(self, signum, frame) -> None:
+        if self.status is not None:
+            self.hard = True
+            raise Interrupted("interrupted", self.status)
+        self.status = 128 + signum
+
+    def check(self) -> None:
+        if self.status is not None:
+            raise Interrupted("interrupted", self.status)
 
 
 def _rng_states(gen: torch.Generator, device: torch.device) -> dict:
@@ -267,7 +306,12 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     no_decay = [p for n, p in model.named_parameters() if p.dim() <= 1]
     opt = torch.optim.AdamW([{"params": decay, "weight_decay": s.weight_decay},
                              {"params": no_decay, "weight_decay": 0.0}], lr=s.lr)
-    steps_per_epoch = math.ceil(len(x_train) / (s.batch_size * world))
+    if s.batch_size % world:
+        raise ConfigError(f"train.batch_size should be a multiple of the {world} processes (it is the global batch, "
+                          f"split evenly between them), got {s.batch_size} instead.")
+    if world > 1:  # dropout masks: drawn per process, each from its own stream (the weights are rank 0's)
+        torch.manual_seed(s.seed + 7919 * rank)
+    steps_per_epoch = math.ceil(len(x_train) // world * world / s.batch_size)
     total = steps_per_epoch * s.epochs
     budget = 60.0 * s.max_minutes if s.max_minutes else math.inf  # seconds
     gen = torch_generator(s.seed)  # the same on every rank: see the permutation below
@@ -301,6 +345,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             perm, position, losses = state["perm"], state["position"], list(state["losses"])
         first = epoch + 1 if epoch_done else epoch
         _set_rng_states(state["rng"], gen, device)  # last: building the model above drew from them
+        if world > 1:  # rank 0's dropout stream was saved; every rank starts a stream of its own
+            torch.manual_seed(s.seed + 7919 * rank + step)
 
     def kept() -> str:
         return (f"the best checkpoint so far (epoch {saved}) is kept at {ckpt}" if saved
@@ -333,6 +379,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         return TrainingError(f"training diverged in epoch {epoch}, step {step + 1}: {what} "
                              f"(train.lr={s.lr:g}; expected a finite loss, lower train.lr); {kept()}.")
 
+    stops = _StopRequests().__enter__()  # left in the `finally` below
     try:
         for epoch in range(first, s.epochs + 1):
             net.train()
@@ -340,55 +387,68 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 with signals_deferred():
                     perm = torch.randperm(len(x_train), generator=gen)
                     position, losses, epoch_done = 0, [], False
-            # every rank takes the same permutation (same seed) and an equal share, so DDP's
-            # gradient all-reduce sees the same number of steps on each rank
-            order = perm[: len(perm) // world * world][rank::world].to(device)
+            # every rank takes the same permutation (same seed) and the same global batches, of which it
+            # trains on an equal share: DDP's averaged gradient is the one process's over the global batch
+            order = perm[: len(perm) // world * world].to(device)
             t0 = time.perf_counter()
             for start in progress(range(position, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
                 elapsed = time.perf_counter() - started
-                if world > 1:  # every rank must take the same number of steps: rank 0's clock decides
-                    flag = torch.tensor([float(elapsed)], device=device)
-                    torch.distributed.broadcast(flag, 0)
-                    elapsed = float(flag)
+                if world > 1:  # every rank must take the same steps: the latest clock and any stop decide
+                    flag = torch.tensor([float(elapsed), float(stops.status or 0)], dtype=torch.float64, device=device)
+                    torch.distributed.all_reduce(flag, torch.distributed.ReduceOp.MAX)
+                    elapsed, stop = float(flag[0]), int(flag[1])
+                    stops.status = stop or None
                 progress_done = min(max(step / total, elapsed / budget), 1.0)
                 if progress_done >= 1.0 and step > 0:  # at least one step, so there is a checkpoint
                     out_of_time = True
                     break
-                with signals_deferred():  # Ctrl-C and SIGTERM land between steps, never inside one
-                    for group in opt.param_groups:
-                        group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
-                    idx = order[start:start + s.batch_size]
-                    rot = random_poses(s.poses, len(idx), generator=gen, dtype=x_train.dtype).to(device)
-                    x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
-                    n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
-                    if s.mirror > 0:
-                        chosen = (torch.rand(len(idx), generator=gen) < s.mirror).to(device)  # (b,)
-                        n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
-                        x, y = reflect_to_twins(x, y, twin_of, chosen)
-                    if s.jitter > 0:
-                        x = x + s.jitter * torch.randn(x.shape, generator=gen).to(device)
-                    loss = loss_fn(net(x, None, n), y)
-                    if not bool(torch.isfinite(loss.detach())):  # every rank sees its own; DDP keeps weights equal
-                        raise diverged(f"the loss is {float(loss.detach())}")
-                    opt.zero_grad(set_to_none=True)
-                    loss.backward()
-                    nn.utils.clip_grad_norm_(model.parameters(), 5.0)
-                    opt.step()
-                    step += 1
-                    position = start + s.batch_size
-                    losses.append(float(loss.detach()))
-                    if s.save_every and step % s.save_every == 0:
-                        save_state("interrupted")
+                stops.check()  # a Ctrl-C or SIGTERM noted since the last step stops here
+                for group in opt.param_groups:
+                    group["lr"] = s.lr * lr_factor(progress_done, s.warmup)
+                batch = order[start:start + s.batch_size]  # the global batch, the same on every rank
+                # draws for the whole global batch, as one process makes them; this rank keeps its share
+                share = len(batch) // world
+                mine = slice(rank * share, (rank + 1) * share)
+                idx = batch[mine]
+                rot = random_poses(s.poses, len(batch), generator=gen, dtype=x_train.dtype)[mine].to(device)
+                x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
+                n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
+                if s.mirror > 0:
+                    chosen = (torch.rand(len(batch), generator=gen)[mine] < s.mirror).to(device)  # (b,)
+                    n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
+                    x, y = reflect_to_twins(x, y, twin_of, chosen)
+                if s.jitter > 0:
+                    noise = torch.randn((len(batch),) + tuple(x.shape[1:]), generator=gen)[mine]
+                    x = x + s.jitter * noise.to(device)
+                loss = loss_fn(net(x, None, n), y)
+                if not bool(torch.isfinite(loss.detach())):  # every rank sees its own; DDP keeps weights equal
+                    raise diverged(f"the loss is {float(loss.detach())}")
+                opt.zero_grad(set_to_none=True)
+                loss.backward()
+                nn.utils.clip_grad_norm_(model.parameters(), 5.0)
+                opt.step()
+                step += 1
+                position = start + s.batch_size
+                losses.append(float(loss.detach()))
+                if s.save_every and step % s.save_every == 0:
+                    save_state("interrupted")
             if not losses:  # the budget ran out at the start of an epoch: nothing new to validate
                 break
+            train_seconds = time.perf_counter() - t0
             if not _finite_weights(model):  # the last step of the epoch overflowed: never save it
                 raise diverged("the weights are no longer finite")
             val_acc, val_loss = _validate(model, x_val, n_val, y_val, s.poses, seed=s.seed,
                                           batch_size=4 * s.batch_size)
             if not math.isfinite(val_loss):
                 raise diverged(f"the validation loss is {val_loss}")
-            row = {"epoch": epoch, "steps": step, "loss": float(np.mean(losses)), "val_accuracy": val_acc,
-                   "val_loss": val_loss, "seconds": time.perf_counter() - t0, "lr": opt.param_groups[0]["lr"]}
+            mean_loss = float(np.mean(losses))
+            if world > 1:  # each rank's losses are over its share: the global batch's mean is theirs
+                total_loss = torch.tensor([mean_loss], dtype=torch.float64, device=device)
+                torch.distributed.all_reduce(total_loss)
+                mean_loss = float(total_loss) / world
+            row = {"epoch": epoch, "steps": step, "loss": mean_loss, "val_accuracy": val_acc,
+                   "val_loss": val_loss, "seconds": time.perf_counter() - t0, "train_seconds": train_seconds,
+                   "lr": opt.param_groups[0]["lr"]}
             last = out_of_time or epoch == s.epochs
             with signals_deferred():  # the records, the checkpoint and the state change together
                 history.append(row)
@@ -404,6 +464,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                         saved = epoch
                 save_state("complete" if last else "interrupted")
                 write_history("complete" if last else "interrupted")
+            if world == 1:  # under torchrun the next step's all-reduce makes every rank agree first
+                stops.check()
             if out_of_time:
                 if rank == 0:
                     print(f"stopped in epoch {epoch}: train.max_minutes={s.max_minutes} reached "
@@ -412,14 +474,17 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     except TrainingError:
         write_history("diverged")
         raise
-    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM turned into Interrupted by the command line
+    except KeyboardInterrupt as exc:  # Ctrl-C or SIGTERM, noted between steps (or twice: at once)
         with signals_deferred():
-            save_state("interrupted")
+            if not stops.hard:  # between two steps: the state is whole
+                save_state("interrupted")
             write_history("interrupted")
         status = getattr(exc, "status", 130)
         how = "SIGTERM" if status == 143 else "Ctrl-C"
         raise Interrupted(f"training interrupted by {how} in epoch {epoch}; {kept()}; continue it with "
                           f"`shapes train resume={run_dir}`.", status) from None
+    finally:
+        stops.__exit__()
     with signals_deferred():  # also when the budget ran out at the start of an epoch
         save_state("complete")
         write_history("complete")
