@@ -35,6 +35,7 @@ from torch import nn
 
 from shapes._atomic import atomic_path
 from shapes._runtime import set_threads, versions
+from shapes.backbones import Classifier
 from shapes.errors import ConfigError, DataError
 from shapes.evaluate import find_checkpoint, load_classifier
 
@@ -140,6 +141,9 @@ def export_run(run: str | os.PathLike, out: str | os.PathLike | None = None, *, 
     ckpt = find_checkpoint(run)
     path = _output_path(ckpt.parent, out)
     model, meta = load_classifier(ckpt)
+    if not isinstance(model, Classifier):
+        raise ConfigError(f"run '{ckpt.parent}' holds the {meta['backbone']['name']} baseline, not a torch network; "
+                          "only runs of a trained backbone can be exported as TorchScript.")
     uses_normals = bool(model.uses_normals)
     n = int(meta["data"]["points"]) if points is None else points
     k = meta["backbone"]["options"].get("k")
