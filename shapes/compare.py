@@ -19,11 +19,11 @@ from pathlib import Path
 from shapes._atomic import write_json
 from shapes.errors import ConfigError, DataError
 from shapes.geometry import POSE_REGIMES, check_regime
+from shapes.run import METRICS, read_metrics
 from shapes.report import REGIME_NOTES, pyplot, save_figure, write_report
 
 __all__ = ["find_runs", "load_run_metrics", "group_runs", "summarize", "compare_runs"]
 
-METRICS = "metrics.json"
 # the run markers: a folder holding one of these is a run; any other folder is searched for runs
 _RUN_FILES = (METRICS, "checkpoint.pt", "train_history.json")
 # settings that do not make a different configuration: the seed is what a group pools over, the
@@ -62,7 +62,7 @@ def load_run_metrics(run: Path) -> dict:
     if not path.is_file():
         raise DataError(f"run folder '{run}' has no {METRICS}; evaluate it first: shapes eval run={run}")
     try:
-        metrics = json.loads(path.read_text(encoding="utf-8"))
+        metrics = read_metrics(Path(run))
     except (OSError, ValueError) as exc:
         raise DataError(f"'{path}' cannot be read as JSON ({' '.join(str(exc).split())[:160]}); "
                         f"re-run shapes eval run={run}") from None

@@ -34,6 +34,7 @@ from shapes.errors import ConfigError, DataError
 from shapes.metrics import expected_calibration_error, pose_consistency, reliability_curve
 from shapes.geometry import POSE_REGIMES, check_regime, axis_angle_to_matrix, random_improper, random_poses, random_rotations
 from shapes.seeding import torch_generator
+from shapes.run import write_metrics
 from shapes.train import CHECKPOINT
 
 __all__ = ["load_classifier", "find_checkpoint", "logits_under_poses", "score", "invariance_errors",
@@ -245,8 +246,9 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
         results["noise_sweep"] = _noise_sweep(model, x, nrm, y, gen, batch_size)
     results["cost"] = _cost(model, meta, ckpt.parent, inferred, infer_seconds, batch_size)
     if write:
-        write_json(ckpt.parent / "metrics.json", results)
+        write_metrics(ckpt.parent, results)
     return results
+
 
 
 def _calibration(prob: np.ndarray, target: np.ndarray, pred: np.ndarray, repeats: int) -> dict:

@@ -17,6 +17,7 @@ import torch
 from _browser import find_browser, open_page
 from shapes.cli import main
 from shapes.report import markdown_to_html
+from shapes.run import read_metrics
 from test_cli import DEMO, TINY_SAMPLE, one_error_line
 
 
@@ -43,7 +44,7 @@ def test_every_evaluated_run_records_its_cost(sweep):
     runs = _runs(sweep)
     assert [r.name for r in runs] == ["0-distance", "1-distance", "2-plain", "3-plain"]
     for run in runs:
-        metrics = json.loads((run / "metrics.json").read_text())
+        metrics = read_metrics(run)
         cost = metrics["cost"]
         history = json.loads((run / "train_history.json").read_text())
         assert cost["train_seconds"] == history["wall_seconds"] and cost["train_seconds"] > 0
@@ -74,7 +75,7 @@ def test_a_sweep_of_two_backbones_and_two_seeds_writes_the_table_and_the_plots(s
     table = (out / "compare.md").read_text()
     for label, group in result["groups"].items():
         assert sorted(group["seeds"]) == [0, 1] and len(group["runs"]) == 2
-        members = [json.loads((Path(r) / "metrics.json").read_text()) for r in group["runs"]]
+        members = [read_metrics(Path(r)) for r in group["runs"]]
         for regime in result["regimes"]:
             acc = [m["regimes"][regime]["accuracy"] for m in members]
             s = group["stats"][f"accuracy_{regime}"]
@@ -276,7 +277,7 @@ def test_the_d2_run_matches_a_scikit_learn_forest_on_its_histograms(d2_runs):
 
 def test_the_d2_report_shows_it_blind_to_hand(d2_runs, sweep):
     for run in d2_runs:
-        metrics = json.loads((run / "metrics.json").read_text())
+        metrics = read_metrics(run)
         # distances only: a reflection changes nothing, so every mirror image gets the part's own answer
         assert metrics["invariance"]["reflection"] < 1e-6 and metrics["invariance"]["rotation"] < 1e-6
         assert metrics["hand"]["handed_clouds"] > 0

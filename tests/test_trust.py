@@ -15,6 +15,7 @@ from shapes import _checks
 from shapes._atomic import atomic_dir, atomic_path, write_json
 from shapes.cli import main
 from shapes.errors import ConfigError, InputError, TrainingError
+from shapes.run import CLOCKED, TIMING
 
 TINY_TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=2",
               "train.batch_size=32", "train.threads=1", "hydra.run.dir=run"]
@@ -60,6 +61,10 @@ def test_same_seed_same_run_and_another_seed_another_run(tiny_data, tmp_path, mo
     c_weights, c_metrics = _train_and_eval(tmp_path / "c", tiny_data, 1, monkeypatch)
     assert a_weights == b_weights and a_metrics == b_metrics
     assert c_weights != a_weights and c_metrics != a_metrics
+    # the clock readings stand apart, in timing.json, so that metrics.json can repeat byte for byte
+    timing = json.loads((tmp_path / "a" / "run" / TIMING).read_text())
+    assert set(timing) == set(CLOCKED) and timing["parts_per_second"] > 0
+    assert not set(CLOCKED) & set(json.loads(a_metrics)["cost"])
 
 
 def test_output_files_get_ordinary_modes_from_a_training_run(tiny_data, tmp_path, monkeypatch):
