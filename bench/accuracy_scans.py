@@ -25,7 +25,7 @@ import torch
 
 from shapes.data import read_mesh, read_meta, scan_view
 from shapes.evaluate import find_checkpoint
-from shapes.geometry import random_improper, random_rotations
+from shapes.geometry import random_improper, uniform_rotations
 from shapes.predict import predict_files
 from shapes.seeding import rng, torch_generator
 
@@ -40,7 +40,7 @@ def write_scans(meta: dict, catalog: Path, folder: Path, scans: int, points: int
     test = [inst for inst in meta["instances"] if inst["split"] == "test"]
     for i, inst in enumerate(test):
         mesh = read_mesh(catalog / inst["file"])
-        for condition, sampler in (("any", random_rotations), ("mirrored", random_improper)):
+        for condition, sampler in (("any", uniform_rotations), ("mirrored", random_improper)):
             for j in range(scans):
                 pose = sampler(1, generator=tgen, dtype=torch.float64)[0].numpy()
                 turned = mesh.copy()

@@ -36,7 +36,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from shapes._atomic import write_json  # noqa: E402
 from shapes.backbones import build_backbone  # noqa: E402
-from shapes.geometry import random_rotations  # noqa: E402
+from shapes.geometry import uniform_rotations  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 OUT = ROOT / "bench" / "results" / "neighbourhood.json"
@@ -97,7 +97,7 @@ def invariance(name: str, smooth: bool, dtype) -> dict:
     out = {}
     for cloud, make in CLOUDS.items():
         x = make().to(dtype)
-        R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
+        R = uniform_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
         t = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=dtype)
         with torch.no_grad():
             base = net(x)

@@ -32,7 +32,7 @@ from shapes.backbones import Classifier, build_backbone
 from shapes.data import SCAN, SURFACE, load_split
 from shapes.errors import ConfigError, DataError
 from shapes.metrics import expected_calibration_error, pose_consistency, reliability_curve
-from shapes.geometry import POSE_REGIMES, check_regime, axis_angle_to_matrix, random_improper, random_poses, random_rotations
+from shapes.geometry import POSE_REGIMES, check_regime, rotation_about_axis, random_improper, random_poses, uniform_rotations
 from shapes.seeding import torch_generator
 from shapes.run import write_metrics
 from shapes.train import CHECKPOINT
@@ -174,7 +174,7 @@ def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 
     base = _logits(model, points, 64, normals)
     scale = float(base.abs().max().clamp_min(1e-12))
     out = {}
-    for name, sampler in (("rotation", random_rotations), ("reflection", random_improper)):
+    for name, sampler in (("rotation", uniform_rotations), ("reflection", random_improper)):
         worst = 0.0
         for _ in range(trials):
             rot = sampler(len(points), generator=gen, dtype=points.dtype)
@@ -312,7 +312,7 @@ def _hand_test(model, x, nrm, y, twin_index, gen, batch_size) -> dict:
     if len(sel) == 0:
         return {"handed_clouds": 0, "twin_answer": None, "same_answer": None}
     xs, ns = x[sel], nrm[sel]
-    rot = random_rotations(len(sel), generator=gen)
+    rot = uniform_rotations(len(sel), generator=gen)
     flip = xs.new_tensor([-1.0, 1.0, 1.0])
     own = logits_under_poses(model, xs, rot, batch_size, ns).argmax(-1).numpy()
     mirrored = logits_under_poses(model, xs * flip, rot, batch_size, ns * flip).argmax(-1).numpy()
@@ -364,7 +364,7 @@ def _angle_sweep(model, x, nrm, y, gen, batch_size) -> dict:
     out = {}
     for deg in ANGLES_DEG:
         axis = torch.randn(len(x), 3, generator=gen)
-        rot = axis_angle_to_matrix(axis, torch.full((len(x),), math.radians(deg)))
+        rot = rotation_about_axis(axis, torch.full((len(x),), math.radians(deg)))
         pred = logits_under_poses(model, x, rot, batch_size, nrm).argmax(-1).numpy()
         out[str(deg)] = float((pred == y).mean())
     return out
@@ -378,7 +378,7 @@ def _noise_sweep(model, x, nrm, y, gen, batch_size) -> dict:
     """
     out = {}
     for sigma in NOISE_LEVELS:
-        rot = random_rotations(len(x), generator=gen)
+        rot = uniform_rotations(len(x), generator=gen)
         noisy = x + sigma * torch.randn(x.shape, generator=gen)
         tilted = torch.nn.functional.normalize(nrm + sigma * torch.randn(nrm.shape, generator=gen), dim=-1)
         pred = logits_under_poses(model, noisy, rot, batch_size, tilted).argmax(-1).numpy()

@@ -6,7 +6,7 @@ import torch
 
 from shapes.backbones import BACKBONES, build_backbone
 from shapes.errors import ConfigError, InputError
-from shapes.geometry import random_improper, random_rotations
+from shapes.geometry import random_improper, uniform_rotations
 
 # name, small options, expected symmetry
 CASES = [
@@ -128,7 +128,7 @@ def test_declared_symmetry_holds_both_ways(name, options, symmetry, cloud):
     net = make(name, options)
     gen = torch.Generator().manual_seed(3)
     base = net(cloud)
-    rot = max(rel_change(base, net(rotate(cloud, random_rotations(3, generator=gen, dtype=torch.float64))))
+    rot = max(rel_change(base, net(rotate(cloud, uniform_rotations(3, generator=gen, dtype=torch.float64))))
               for _ in range(5))
     ref = max(rel_change(base, net(rotate(cloud, random_improper(3, generator=gen, dtype=torch.float64))))
               for _ in range(5))
@@ -146,7 +146,7 @@ def test_declared_symmetry_holds_both_ways(name, options, symmetry, cloud):
 def test_float32_invariance_within_tolerance(name, options, symmetry, cloud):
     net = make(name, options, dtype=torch.float32)
     x = cloud.float()
-    R = random_rotations(3, generator=torch.Generator().manual_seed(5))
+    R = uniform_rotations(3, generator=torch.Generator().manual_seed(5))
     assert rel_change(net(x), net(rotate(x, R))) <= 1e-4
 
 
@@ -173,7 +173,7 @@ def test_normal_signs_ignored_unless_signed(name, options, signed, cloud):
     flip = torch.where(torch.rand(cloud.shape[:2] + (1,), generator=gen) < 0.4, -1.0, 1.0).to(torch.float64)
     base = net(cloud, normals=normals)
     reversed_some = net(cloud, normals=normals * flip)
-    R = random_rotations(1, generator=gen, dtype=torch.float64)[0]
+    R = uniform_rotations(1, generator=gen, dtype=torch.float64)[0]
     turned = net(rotate(cloud, R) + 0.3, normals=rotate(normals * flip, R))
     Q = random_improper(1, generator=gen, dtype=torch.float64)[0]
     mirrored = net(rotate(cloud, Q), normals=rotate(normals, Q))

@@ -17,7 +17,7 @@ from scipy.spatial import cKDTree
 
 from shapes.backbones import build_backbone
 from shapes.errors import ConfigError
-from shapes.geometry import neighbour_taper, random_improper, random_rotations, smooth_graph
+from shapes.geometry import neighbour_taper, random_improper, uniform_rotations, smooth_graph
 from test_backbones import CASES  # the table of backbone cases (tests/ is on the path under pytest)
 
 EQUIVARIANT = [c for c in CASES if c[2] != "none"]
@@ -93,7 +93,7 @@ def rel_change(a, b):
 
 def moved(points, n=50, seed=1):
     """``n`` copies of ``points`` rotated by Haar rotations and translated, with the rotations."""
-    R = random_rotations(n, generator=torch.Generator().manual_seed(seed), dtype=torch.float64)
+    R = uniform_rotations(n, generator=torch.Generator().manual_seed(seed), dtype=torch.float64)
     t = torch.randn(n, 1, 3, generator=torch.Generator().manual_seed(seed + 100), dtype=torch.float64)
     return points.expand(n, -1, -1) @ R.transpose(-1, -2) + t, R
 
@@ -116,7 +116,7 @@ def test_lattices_tie_at_the_kth_neighbour(cloud):
 @pytest.mark.parametrize("name,options,symmetry", EQUIVARIANT, ids=EQ_IDS)
 @pytest.mark.parametrize("cloud", list(CLOUDS))
 def test_grid_features_unchanged_by_50_rotations_and_translations(name, options, symmetry, cloud):
-    # reference: random_rotations (Haar, checked against scipy in test_geometry_poses); invariance is the
+    # reference: uniform_rotations (Haar, checked against scipy in test_geometry_poses); invariance is the
     # declared symmetry, to round-off in float64
     x = CLOUDS[cloud]()
     many, _ = moved(x)

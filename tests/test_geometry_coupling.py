@@ -18,7 +18,7 @@ from shapes.geometry import (
     clebsch_gordan,
     complex_clebsch_gordan,
     random_improper,
-    random_rotations,
+    uniform_rotations,
     real_basis_change,
     wigner_d,
 )
@@ -35,7 +35,7 @@ def couple(C, a, b):
 
 @pytest.fixture(scope="module")
 def poses():
-    R = random_rotations(4, torch_generator(0), dtype=F64)
+    R = uniform_rotations(4, torch_generator(0), dtype=F64)
     M = random_improper(4, torch_generator(1), dtype=F64)
     return R, M
 

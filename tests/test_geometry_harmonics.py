@@ -9,7 +9,7 @@ from numpy.polynomial.legendre import leggauss
 from scipy.special import sph_harm_y
 
 from shapes.errors import InputError
-from shapes.geometry import L_MAX, random_improper, random_rotations, spherical_harmonics, wigner_d
+from shapes.geometry import L_MAX, random_improper, uniform_rotations, spherical_harmonics, wigner_d
 from shapes.seeding import torch_generator
 
 
@@ -104,7 +104,7 @@ def test_parity_and_degree_one_equivariance():
         # (docs/design.md, "Parity and handedness")
         assert torch.allclose(Yneg[l], (-1) ** l * Y[l], atol=1e-13)
     # degree 1 rotates as R permuted to (y, z, x): Y_1(R v) = P R P^T Y_1(v)
-    R = random_rotations(1, torch_generator(1), dtype=torch.float64)[0]
+    R = uniform_rotations(1, torch_generator(1), dtype=torch.float64)[0]
     perm = [1, 2, 0]
     D1 = R[perm][:, perm]
     Y1r = spherical_harmonics(1, v @ R.T)[1]
@@ -178,7 +178,7 @@ def test_bad_input(l_max, vectors, message):
 
 def test_equivariance_with_wigner_d():
     v = torch.randn(100, 3, generator=torch_generator(6), dtype=torch.float64)
-    R = random_rotations(3, torch_generator(7), dtype=torch.float64)
+    R = uniform_rotations(3, torch_generator(7), dtype=torch.float64)
     for l in range(7):
         D = wigner_d(l, R)
         for i in range(3):

@@ -128,9 +128,9 @@ def test_gather_and_relative_vectors():
 
 def test_knn_is_rotation_and_translation_invariant():
     pts = torch.randn(1, 40, 3, generator=torch_generator(8), dtype=torch.float64)
-    from shapes.geometry import random_rotations
+    from shapes.geometry import uniform_rotations
 
-    R = random_rotations(1, torch_generator(9), dtype=torch.float64)
+    R = uniform_rotations(1, torch_generator(9), dtype=torch.float64)
     moved = pts @ R.transpose(-1, -2) + torch.tensor([1.0, -2.0, 3.0], dtype=torch.float64)
     a, b = knn_graph(pts, 5), knn_graph(moved, 5)
     assert torch.equal(a.index, b.index)

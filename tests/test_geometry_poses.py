@@ -12,13 +12,13 @@ from shapes.errors import ConfigError, InputError
 from shapes.geometry import (
     POSE_REGIMES,
     apply_pose,
-    axis_angle_to_matrix,
-    matrix_to_axis_angle,
-    quaternion_to_matrix,
+    rotation_about_axis,
+    axis_and_angle_of,
+    rotation_from_quaternion,
     random_improper,
     random_poses,
     random_reflections,
-    random_rotations,
+    uniform_rotations,
     random_z_rotations,
     reflection,
     rotation_angle,
@@ -34,7 +34,7 @@ def haar_angle_cdf(t):
 
 
 def test_haar_rotation_angle_passes_ks():
-    R = random_rotations(20_000, torch_generator(0), dtype=torch.float64)
+    R = uniform_rotations(20_000, torch_generator(0), dtype=torch.float64)
     angles = rotation_angle(R).numpy()
     # reference: scipy.stats.kstest against the Haar angle CDF
     assert kstest(angles, haar_angle_cdf).pvalue > 0.01
@@ -52,7 +52,7 @@ def test_ks_rejects_uniform_euler_angles():
 
 
 def test_haar_mean_angle():
-    R = random_rotations(20_000, torch_generator(1), dtype=torch.float64)
+    R = uniform_rotations(20_000, torch_generator(1), dtype=torch.float64)
     # closed form: int_0^pi t (1 - cos t)/pi dt = (pi^2/2 + 2)/pi = pi/2 + 2/pi ~ 2.2074 rad (density as above);
     # the angle's variance is pi^2/12 - 4/pi^2 ~ 0.417, so the mean of 20000 has std ~ 0.0046
     assert abs(rotation_angle(R).mean().item() - (math.pi / 2 + 2 / math.pi)) < 0.02
@@ -60,7 +60,7 @@ def test_haar_mean_angle():
 
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
 def test_rotations_are_proper_and_orthogonal(dtype):
-    R = random_rotations(500, torch_generator(2), dtype=dtype)
+    R = uniform_rotations(500, torch_generator(2), dtype=dtype)
     assert R.shape == (500, 3, 3) and R.dtype == dtype
     eye = torch.eye(3, dtype=dtype)
     # closed form: R^T R = I and det R = +1 for a rotation
@@ -75,7 +75,7 @@ def test_improper_and_reflections_have_det_minus_one():
         assert (torch.linalg.det(M) + 1).abs().max() < 1e-12
         assert (M.transpose(-1, -2) @ M - torch.eye(3, dtype=torch.float64)).abs().max() < 1e-12
     # and a rotation does not: the check above can fail
-    assert (torch.linalg.det(random_rotations(5, torch_generator(3))) + 1).abs().min() > 1
+    assert (torch.linalg.det(uniform_rotations(5, torch_generator(3))) + 1).abs().min() > 1
 
 
 def test_reflection_is_householder():
@@ -89,8 +89,8 @@ def test_reflection_is_householder():
 
 def test_rotations_do_not_commute():
     # closed form: R_z(180) R_y(45) != R_y(45) R_z(180); +x ends on opposite sides (checked against scipy below)
-    rz = axis_angle_to_matrix(torch.tensor([0.0, 0, 1], dtype=torch.float64), torch.tensor(math.pi, dtype=torch.float64))
-    ry = axis_angle_to_matrix(torch.tensor([0.0, 1, 0], dtype=torch.float64), torch.tensor(math.pi / 4, dtype=torch.float64))
+    rz = rotation_about_axis(torch.tensor([0.0, 0, 1], dtype=torch.float64), torch.tensor(math.pi, dtype=torch.float64))
+    ry = rotation_about_axis(torch.tensor([0.0, 1, 0], dtype=torch.float64), torch.tensor(math.pi / 4, dtype=torch.float64))
     ex = torch.tensor([1.0, 0, 0], dtype=torch.float64)
     a, b = rz @ ry @ ex, ry @ rz @ ex
     # closed form: (-c, 0, -s) against (-c, 0, +s) with c = s = cos 45: opposite sides of the xy-plane
@@ -105,14 +105,14 @@ def test_axis_angle_matches_scipy_and_round_trips():
     axis = rng.normal(size=(200, 3))
     angle = rng.uniform(0, np.pi, size=200)
     angle[:3] = [0.0, np.pi, np.pi - 1e-9]  # identity and half-turns are the hard cases
-    R = axis_angle_to_matrix(torch.from_numpy(axis * 3.0), torch.from_numpy(angle))
+    R = rotation_about_axis(torch.from_numpy(axis * 3.0), torch.from_numpy(angle))
     unit = axis / np.linalg.norm(axis, axis=1, keepdims=True)
     # reference: scipy.spatial.transform.Rotation.from_rotvec
     ref = Rotation.from_rotvec(unit * angle[:, None]).as_matrix()
     assert np.abs(R.numpy() - ref).max() < 1e-12
-    ax2, an2 = matrix_to_axis_angle(R)
+    ax2, an2 = axis_and_angle_of(R)
     assert np.abs(an2.numpy() - angle).max() < 1e-7
-    assert (axis_angle_to_matrix(ax2, an2) - R).abs().max() < 1e-12
+    assert (rotation_about_axis(ax2, an2) - R).abs().max() < 1e-12
     # reference: scipy's rotation vector magnitude is the angle
     assert np.abs(rotation_angle(R).numpy() - np.linalg.norm(Rotation.from_matrix(ref).as_rotvec(), axis=1)).max() < 1e-9
 
@@ -121,7 +121,7 @@ def test_quaternion_convention_matches_scipy():
     q = torch.tensor([[0.3, -0.2, 0.9, 0.1]], dtype=torch.float64)
     # reference: scipy Rotation.from_quat takes (x, y, z, w)
     ref = Rotation.from_quat(q[:, [1, 2, 3, 0]].numpy()).as_matrix()
-    assert np.abs(quaternion_to_matrix(q).numpy() - ref).max() < 1e-12
+    assert np.abs(rotation_from_quaternion(q).numpy() - ref).max() < 1e-12
 
 
 def test_rotations_about_z():
@@ -132,13 +132,13 @@ def test_rotations_about_z():
     ez = torch.tensor([0.0, 0, 1], dtype=torch.float64)
     assert torch.allclose(Z @ ez, ez.expand(100, 3))
     # a Haar rotation does move +z: the check above can fail
-    assert (random_rotations(100, torch_generator(5), dtype=torch.float64) @ ez - ez).abs().max() > 0.5
+    assert (uniform_rotations(100, torch_generator(5), dtype=torch.float64) @ ez - ez).abs().max() > 0.5
 
 
 def test_same_seed_same_rotations():
-    a = random_rotations(10, torch_generator(7))
-    b = random_rotations(10, torch_generator(7))
-    c = random_rotations(10, torch_generator(8))
+    a = uniform_rotations(10, torch_generator(7))
+    b = uniform_rotations(10, torch_generator(7))
+    c = uniform_rotations(10, torch_generator(8))
     assert torch.equal(a, b) and not torch.equal(a, c)
     for regime in POSE_REGIMES:
         assert torch.equal(random_poses(regime, 4, torch_generator(1)), random_poses(regime, 4, torch_generator(1)))
@@ -162,7 +162,7 @@ def test_pose_regimes():
 
 def test_apply_pose_convention():
     pts = torch.randn(2, 5, 3, generator=torch_generator(0), dtype=torch.float64)
-    R = random_rotations(2, torch_generator(1), dtype=torch.float64)
+    R = uniform_rotations(2, torch_generator(1), dtype=torch.float64)
     out = apply_pose(pts, R)
     # convention: docs/design.md, "Rotations": x' = R x for each point
     assert torch.allclose(out[1, 3], R[1] @ pts[1, 3])
@@ -174,7 +174,7 @@ def test_apply_pose_convention():
 
 def test_bad_counts_and_shapes():
     with pytest.raises(InputError, match="n should be an integer >= 0, got -1"):
-        random_rotations(-1)
+        uniform_rotations(-1)
     with pytest.raises(InputError, match=r"\(\.\.\., 3\).*\(4, 2\)"):
         reflection(torch.zeros(4, 2))
     with pytest.raises(InputError, match=r"\(\.\.\., 3, 3\).*\(3, 4\)"):
@@ -185,4 +185,4 @@ def test_axis_angle_is_differentiable():
     axis = torch.tensor([0.2, -0.5, 1.0], dtype=torch.float64, requires_grad=True)
     angle = torch.tensor(0.7, dtype=torch.float64, requires_grad=True)
     # reference: torch.autograd.gradcheck (finite differences)
-    assert torch.autograd.gradcheck(axis_angle_to_matrix, (axis, angle))
+    assert torch.autograd.gradcheck(rotation_about_axis, (axis, angle))

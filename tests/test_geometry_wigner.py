@@ -12,7 +12,7 @@ from shapes.errors import InputError
 from shapes.geometry import (
     L_MAX,
     random_improper,
-    random_rotations,
+    uniform_rotations,
     real_basis_change,
     spherical_harmonics,
     wigner_d,
@@ -25,7 +25,7 @@ F64 = torch.float64
 
 @pytest.fixture(scope="module")
 def rotations():
-    return random_rotations(6, torch_generator(0), dtype=F64)
+    return uniform_rotations(6, torch_generator(0), dtype=F64)
 
 
 @pytest.mark.parametrize("l", range(7))

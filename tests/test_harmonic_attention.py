@@ -16,7 +16,7 @@ from shapes.backbones._equivariant import (
 )
 from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
 from shapes.errors import ConfigError, InputError
-from shapes.geometry import random_improper, random_rotations, reflection, wigner_d
+from shapes.geometry import random_improper, uniform_rotations, reflection, wigner_d
 
 SMALL = {"k": 8}  # default channels and layers, small neighbourhoods: the shipped architecture, cheaply
 
@@ -87,7 +87,7 @@ def test_features_invariant_under_50_rotations_and_translations(dtype, tol):
     # claim: docs/design.md, "Backbone contract" and "Translations"; Haar rotations from shapes.geometry (KS-tested there)
     net = make(dtype)
     cloud = random_cloud(dtype=dtype)
-    R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
+    R = uniform_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
     shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=dtype) * 5
     moved = rotate(cloud.expand(50, -1, -1), R) + shift
     base = net(cloud)
@@ -105,7 +105,7 @@ def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
     net = make(**options)
     cloud = random_cloud(n=40)
     gen = torch.Generator().manual_seed(4)
-    Q = (random_improper if improper else random_rotations)(3, generator=gen, dtype=torch.float64)
+    Q = (random_improper if improper else uniform_rotations)(3, generator=gen, dtype=torch.float64)
     before = net.forward_features(cloud.expand(3, -1, -1))
     after = net.forward_features(rotate(cloud.expand(3, -1, -1), Q))
     assert len(before) == net.config.layers
@@ -139,7 +139,7 @@ def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
     # parity rule: docs/design.md, "Parity and handedness"
     cloud = helix_cloud()
     mirror = rotate(cloud, reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64)))
-    turned = rotate(mirror, random_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64))
+    turned = rotate(mirror, uniform_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64))
     full, even = make(), make(parity="even")
     assert rel(full(cloud), full(mirror)) > 1e-3
     assert rel(full(cloud), full(turned)) > 1e-3
@@ -213,7 +213,7 @@ def test_global_vector_readout_matches_numpy_and_transforms_by_parity():
         np.testing.assert_allclose(out[b].detach().numpy(), np.concatenate([dots, dets]), rtol=1e-10, atol=1e-12)
     # components in (y, z, x) order: polar vectors turn with the Wigner-D of degree 1; Q improper and proper
     for Q in (random_improper(4, generator=torch.Generator().manual_seed(2), dtype=torch.float64),
-              random_rotations(4, generator=torch.Generator().manual_seed(3), dtype=torch.float64)):
+              uniform_rotations(4, generator=torch.Generator().manual_seed(3), dtype=torch.float64)):
         moved = transform_features({(1, -1): g[:, None]}, Q)[(1, -1)][:, 0]
         turned = readout(moved)
         sign = torch.det(Q)[:, None]
@@ -401,7 +401,7 @@ def test_normals_features_invariant_under_50_rotations_and_translations(parity):
     # claim: docs/design.md, "Backbone contract"; closed form: normals turn as n -> R n and ignore translations
     net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(), random_normals()
-    R = random_rotations(50, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    R = uniform_rotations(50, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
     shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=torch.float64) * 5
     moved, turned = turn(cloud.expand(50, -1, -1), normals.expand(50, -1, -1), R)
     base = net(cloud, normals=normals)
@@ -419,7 +419,7 @@ def test_normals_every_layer_transforms_with_wigner_d_and_parity(parity, imprope
     net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(n=40), random_normals(n=40)
     gen = torch.Generator().manual_seed(4)
-    Q = (random_improper if improper else random_rotations)(3, generator=gen, dtype=torch.float64)
+    Q = (random_improper if improper else uniform_rotations)(3, generator=gen, dtype=torch.float64)
     before = net.forward_features(cloud.expand(3, -1, -1), normals=normals.expand(3, -1, -1))
     moved, turned = turn(cloud.expand(3, -1, -1), normals.expand(3, -1, -1), Q)
     after = net.forward_features(moved, normals=turned)
@@ -435,7 +435,7 @@ def test_turning_the_points_but_not_the_normals_changes_the_output():
     # closed form: a consistent pose turns both (n -> R n); turning only the points breaks the surface
     net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     cloud, normals = random_cloud(), random_normals()
-    R = random_rotations(4, generator=torch.Generator().manual_seed(6), dtype=torch.float64)
+    R = uniform_rotations(4, generator=torch.Generator().manual_seed(6), dtype=torch.float64)
     base = net(cloud, normals=normals).expand(4, -1)
     moved, turned = turn(cloud.expand(4, -1, -1), normals.expand(4, -1, -1), R)
     assert rel(base, net(moved, normals=turned)) <= 1e-9
@@ -478,7 +478,7 @@ def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
     # closed form: an outward normal is a polar vector, n -> Q n under the reflection too
     cloud, normals = threaded_cloud()
     S = reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64))
-    Q = random_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64) @ S
+    Q = uniform_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64) @ S
     mirror = turn(cloud, normals, Q)
     full = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
     even = make(parity="even", channels={0: 8, 1: 4, 2: 2}, **NORMALS)

@@ -16,10 +16,10 @@ from shapes.geometry._checks import check_count, check_last_dim, check_matrices,
 
 __all__ = [
     "POSE_REGIMES",
-    "random_rotations",
-    "quaternion_to_matrix",
-    "axis_angle_to_matrix",
-    "matrix_to_axis_angle",
+    "uniform_rotations",
+    "rotation_from_quaternion",
+    "rotation_about_axis",
+    "axis_and_angle_of",
     "rotation_angle",
     "rotations_about_z",
     "random_z_rotations",
@@ -66,7 +66,7 @@ def _rand(shape, generator, dtype, device) -> torch.Tensor:
     return x.to(_device_of(generator, device))
 
 
-def quaternion_to_matrix(q: torch.Tensor) -> torch.Tensor:
+def rotation_from_quaternion(q: torch.Tensor) -> torch.Tensor:
     """Rotation matrices from quaternions ``(w, x, y, z)``.
 
     Parameters
@@ -89,7 +89,7 @@ def quaternion_to_matrix(q: torch.Tensor) -> torch.Tensor:
     return torch.stack(rows, -1).reshape(q.shape[:-1] + (3, 3))  # (..., 3, 3)
 
 
-def random_rotations(
+def uniform_rotations(
     n: int, generator: torch.Generator | None = None, dtype=torch.float32, device=None
 ) -> torch.Tensor:
     """Haar-uniform rotations from normalised Gaussian quaternions.
@@ -109,7 +109,7 @@ def random_rotations(
     n = check_count(n, "n")
     # The quaternion is drawn in float64 so float32 and float64 callers get the same rotations.
     q = _randn((n, 4), generator, torch.float64, device)
-    return quaternion_to_matrix(q).to(dtype)
+    return rotation_from_quaternion(q).to(dtype)
 
 
 def _skew(v: torch.Tensor) -> torch.Tensor:
@@ -119,7 +119,7 @@ def _skew(v: torch.Tensor) -> torch.Tensor:
     return torch.stack([o, -z, y, z, o, -x, -y, x, o], -1).reshape(v.shape[:-1] + (3, 3))
 
 
-def axis_angle_to_matrix(axis: torch.Tensor, angle) -> torch.Tensor:
+def rotation_about_axis(axis: torch.Tensor, angle) -> torch.Tensor:
     """Rotation by ``angle`` (radians, right-hand rule) about ``axis`` (Rodrigues' formula).
 
     Parameters
@@ -166,7 +166,7 @@ def matrix_to_quaternion(R: torch.Tensor) -> torch.Tensor:
     return torch.where(q[..., :1] < 0, -q, q)
 
 
-def matrix_to_axis_angle(R: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+def axis_and_angle_of(R: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Axis and angle of rotation matrices.
 
     Parameters
@@ -179,7 +179,7 @@ def matrix_to_axis_angle(R: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     axis : (..., 3) float
         Unit axes (an arbitrary unit axis, +x, for the identity).
     angle : (...) float
-        Angles in ``[0, pi]``, so that ``axis_angle_to_matrix(axis, angle) == R``.
+        Angles in ``[0, pi]``, so that ``rotation_about_axis(axis, angle) == R``.
     """
     check_matrices(R)
     q = matrix_to_quaternion(R)
@@ -266,7 +266,7 @@ def random_improper(
     """
     n = check_count(n, "n")
     h = random_reflections(n, generator, torch.float64, device)
-    r = random_rotations(n, generator, torch.float64, device)
+    r = uniform_rotations(n, generator, torch.float64, device)
     return (r @ h).to(dtype)
 
 
@@ -308,7 +308,7 @@ def random_poses(
     if regime == "upright":
         return random_z_rotations(n, generator, dtype, device)
     if regime == "any":
-        return random_rotations(n, generator, dtype, device)
+        return uniform_rotations(n, generator, dtype, device)
     if regime == "mirrored":
         return random_improper(n, generator, dtype, device)
     raise AssertionError(regime)  # unreachable: check_regime above
