@@ -14,7 +14,8 @@ from typing import Callable, Iterable
 
 from shapes.errors import ConfigError, InputError
 
-__all__ = ["number", "integer", "choice", "boolean", "text", "optional", "listed", "less_than", "fail"]
+__all__ = ["number", "integer", "choice", "boolean", "text", "optional", "listed", "vector", "less_than", "fail",
+           "Scope"]
 
 
 def fail(name: str, expected: str, found: str, error: type = ConfigError) -> None:
@@ -113,8 +114,48 @@ def listed(name: str, value, item: Callable, *, minimum: int = 1, one_as_list: b
     return [item(f"{name}[{i}]", v) for i, v in enumerate(value)]
 
 
+def vector(name: str, value, size: int = 3, error: type = ConfigError) -> list[float]:
+    """``size`` finite numbers, as a list (a position ``[x, y, z]``); any sequence of numbers passes."""
+    def finite(v) -> bool:
+        return not isinstance(v, bool) and isinstance(v, numbers.Real) and math.isfinite(v)
+
+    if (isinstance(value, (str, bytes, dict)) or not hasattr(value, "__len__") or len(value) != size
+            or not all(finite(v) for v in value)):
+        fail(name, f"{size} numbers [x, y, z]" if size == 3 else f"{size} numbers", repr(value), error)
+    return [float(v) for v in value]
+
+
 def less_than(small: str, a: float, big: str, b: float, *, unit: str = "", error: type = InputError) -> None:
     """Raise unless ``a < b`` (e.g. a bore smaller than the outside diameter)."""
     u = f" {unit}" if unit else ""
     if not a < b:
         raise error(f"{small} should be < {big} ({b:g}{u}), got {a:g}{u} instead.")
+
+
+class Scope:
+    """The validators above for one family of options: every name gets ``prefix`` (``Scope("hex_nut: ",
+    InputError).integer("segments", 8, low=12)`` says ``hex_nut: segments should be an integer >= 12,
+    ...``) and every failure raises ``error``; ``choice`` keeps ConfigError unless told otherwise (an
+    unknown name is a wrong option, not a bad measure)."""
+
+    def __init__(self, prefix: str, error: type = ConfigError, unit: str = ""):
+        self.prefix, self.error, self.unit = prefix, error, unit
+
+    def number(self, name: str, value, **bounds) -> float:
+        return number(self.prefix + name, value, error=self.error, **{"unit": self.unit, **bounds})
+
+    def positive(self, name: str, value) -> float:
+        """A finite number > 0 (a length, in ``unit``)."""
+        return self.number(name, value, low=0, low_open=True)
+
+    def integer(self, name: str, value, low: int | None = None, high: int | None = None) -> int:
+        return integer(self.prefix + name, value, low=low, high=high, error=self.error)
+
+    def choice(self, name: str, value, options: Iterable, error: type = ConfigError):
+        return choice(self.prefix + name, value, options, error=error)
+
+    def boolean(self, name: str, value) -> bool:
+        return boolean(self.prefix + name, value, error=self.error)
+
+    def less_than(self, small: str, a: float, big: str, b: float) -> None:
+        less_than(self.prefix + small, a, big, b, unit=self.unit, error=self.error)

@@ -58,14 +58,6 @@ def eval_poses(value) -> list[str]:
     return check.listed("eval.poses", value, lambda n, v: check_regime(v, POSES, n), one_as_list=True)
 
 
-def _viewpoint(name, value):
-    if value is None:
-        return None
-    if not isinstance(value, (list, tuple)) or len(value) != 3:
-        check.fail(name, "null or 3 numbers [x, y, z]", repr(value))
-    return [check.number(f"{name}[{i}]", v) for i, v in enumerate(value)]
-
-
 def _minutes(name, value):
     if value is None:
         return {}
@@ -138,7 +130,7 @@ RULES = {
     "predict.out": check.text,
     "predict.units": lambda n, v: check.choice(n, v, ("mm", "m", "in")),
     "predict.normals": lambda n, v: check.choice(n, v, ("auto", "file", "estimated")),
-    "predict.viewpoint": _viewpoint,
+    "predict.viewpoint": lambda n, v: check.optional(check.vector, n, v),
     "predict.orientation": lambda n, v: check.optional(check.choice, n, v, options=("single-view", "propagate")),
     "predict.batch_size": _positive_int,
     "predict.threads": _threads,

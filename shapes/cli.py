@@ -136,64 +136,29 @@ def _plain(node):
 
 
 def _backbone_from_file(name: str, options: dict | None = None):
-    """Instantiate ``shapes/conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
+    """Build ``shapes/conf/backbone/<name>.yaml`` with ``options`` on top (the demo trains several)."""
     from omegaconf import OmegaConf
+
+    from shapes.run import backbone_from_config
 
     path = CONF_DIR / "backbone" / f"{name}.yaml"
     if not path.is_file():
         raise ConfigError(f"unknown backbone '{name}'; choose one of: {', '.join(_groups()['backbone'])}.")
-    return _build_backbone(OmegaConf.merge(OmegaConf.load(path), options or {}))
+    return backbone_from_config(_plain(OmegaConf.merge(OmegaConf.load(path), options or {})))
 
 
-def _build_backbone(node):
-    """Instantiate a backbone config node; a bad option gives our one-line error, not Hydra's wrapper."""
-    from hydra.errors import InstantiationException
-    from hydra.utils import instantiate
+def _fit(backbone, data, run_dir, **settings) -> Path:
+    """Train ``backbone`` (``shapes.train``) or fit the classical baseline (``shapes.baseline``) into ``run_dir``;
+    ``settings`` are :class:`shapes.train.TrainSettings`'s."""
+    from shapes.classic import D2Options
+    from shapes.train import TrainSettings, train_classifier
 
-    try:
-        return instantiate(node)
-    except InstantiationException as exc:
-        if isinstance(exc.__cause__, ShapesError):
-            raise exc.__cause__ from None
-        raise
+    s = TrainSettings(**settings)
+    if isinstance(backbone, D2Options):
+        from shapes.baseline import train_d2  # the classical baseline: fitted, not trained by steps
 
-
-def _latest_run(run: str) -> str:
-    if run != "latest":
-        return run
-    found = sorted(Path("runs").glob("**/checkpoint.pt"), key=lambda p: p.stat().st_mtime)
-    finished = [p for p in found if _run_status(p.parent) not in ("interrupted", "diverged")]
-    if not finished:
-        passed = f" ({len(found)} interrupted or diverged run(s) passed over)" if found else ""
-        raise ConfigError(f"run=latest but no finished trained run exists under runs/{passed}; train one with "
-                          "`shapes train` or name it with run=<folder>.")
-    return str(finished[-1].parent)
-
-
-def _trained_run(cfg, run: str | None = None) -> str:
-    """The run ``eval``, ``predict`` and ``export`` use (``cfg.run``, or ``run`` when given): ``run=latest``
-    resolved, and a run whose training did not finish refused unless ``allow_unfinished=true``."""
-    run = _latest_run(cfg.run if run is None else run)
-    folder = Path(run) if Path(run).is_dir() else Path(run).parent
-    status = _run_status(folder)
-    if status in ("interrupted", "diverged", "running") and not cfg.get("allow_unfinished", False):
-        why = ("its checkpoint is the last good one before the loss became non-finite; retrain with a lower "
-               "train.lr" if status == "diverged" else
-               f"its checkpoint is the best of the epochs it finished; continue it with `shapes train "
-               f"resume={folder}`")
-        raise ConfigError(f"run '{run}' did not finish training (status: {status}): {why}, or pass "
-                          "allow_unfinished=true to use it as it is.")
-    return run
-
-
-def _run_status(run_dir: Path) -> str | None:
-    """The ``status`` in a run's train_history.json (None when it has none: an older run)."""
-    import json
-
-    try:
-        return json.loads((run_dir / "train_history.json").read_text()).get("status")
-    except (OSError, ValueError, AttributeError):
-        return None
+        return train_d2(data, run_dir, backbone, seed=s.seed, threads=s.threads, extra=s.extra)
+    return train_classifier(backbone, data, run_dir, s)
 
 
 def _run_parts(cfg) -> None:
@@ -233,8 +198,9 @@ def _run_train(cfg) -> None:
 
     from shapes._atomic import write_text
     from shapes._runtime import set_threads
+    from shapes.run import backbone_from_config
     from shapes.seeding import seed_everything
-    from shapes.train import TrainSettings, check_settings, train_classifier
+    from shapes.train import TrainSettings, check_settings
 
     run_dir = Path(HydraConfig.get().runtime.output_dir)
     try:
@@ -242,14 +208,8 @@ def _run_train(cfg) -> None:
                                                 extra={"config": OmegaConf.to_container(cfg, resolve=True)}))
         set_threads(settings.threads)
         seed_everything(settings.seed)  # before the backbone is built: building it draws its weights
-        backbone = _build_backbone(cfg.backbone)
-        if type(backbone).__module__ + "." + type(backbone).__qualname__ == "shapes.baseline.D2Options":
-            from shapes.baseline import train_d2  # the classical baseline: fitted, not trained by steps
-
-            ckpt = train_d2(cfg.data, run_dir, backbone, seed=settings.seed, threads=settings.threads,
-                            extra=settings.extra)
-        else:
-            ckpt = train_classifier(backbone, cfg.data, run_dir, settings)
+        backbone = backbone_from_config(_plain(cfg.backbone))
+        ckpt = _fit(backbone, cfg.data, run_dir, **vars(settings))
     except BaseException:
         if run_dir.is_dir() and not any(run_dir.iterdir()):
             run_dir.rmdir()  # Hydra made the folder before the job failed: leave nothing behind
@@ -271,6 +231,7 @@ def _resume_train(cfg) -> None:
     from shapes._atomic import write_text
     from shapes._runtime import set_threads
     from shapes.backbones import build_backbone
+    from shapes.run import RunMeta
     from shapes.seeding import seed_everything
     from shapes.train import TrainSettings, check_settings, read_resume_state, train_classifier
 
@@ -282,7 +243,8 @@ def _resume_train(cfg) -> None:
     settings = check_settings(TrainSettings(**recorded))
     set_threads(settings.threads)
     seed_everything(settings.seed)
-    backbone = build_backbone(state["meta"]["backbone"]["name"], **state["meta"]["backbone"]["options"])
+    recorded = RunMeta.from_dict(state["meta"]).backbone
+    backbone = build_backbone(recorded.name, **recorded.options)
     print(f"resuming {run_dir} at epoch {state['epoch'] + state['epoch_done']}, step {state['step']}", flush=True)
     ckpt = train_classifier(backbone, state["data"], run_dir, settings, resume=True)
     if int(os.environ.get("RANK", "0")) != 0:
@@ -295,20 +257,14 @@ def _resume_train(cfg) -> None:
 
 def _run_eval(cfg) -> None:
     from shapes._options import eval_poses
-    from shapes.evaluate import CHECKPOINT, evaluate_run
-    from shapes.report import run_report
+    from shapes.evaluate import evaluate_runs
 
     e = cfg.eval
-    run = Path(_latest_run(cfg.run))
-    # a folder of runs (a sweep) is evaluated run by run
-    runs = [run] if not run.is_dir() or (run / CHECKPOINT).is_file() else \
-        sorted(p.parent for p in run.rglob(CHECKPOINT)) or [run]
-    for one in runs:
-        metrics = evaluate_run(_trained_run(cfg, str(one)), None, poses=tuple(eval_poses(_plain(e.poses))),
-                               repeats=e.repeats, seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
-        report = run_report(metrics, Path(metrics["checkpoint"]).parent)
-        if len(runs) > 1:
-            print(f"{one}:")
+    done = evaluate_runs(cfg.run, allow_unfinished=cfg.allow_unfinished, poses=tuple(eval_poses(_plain(e.poses))),
+                         repeats=e.repeats, seed=cfg.seed, batch_size=e.batch_size, threads=e.threads)
+    for metrics, report in done:  # a folder of runs (a sweep) is evaluated run by run
+        if len(done) > 1:
+            print(f"{Path(metrics['checkpoint']).parent}:")
         for regime, m in metrics["regimes"].items():
             print(f"{regime:>8}: accuracy {100 * m['accuracy']:5.1f}%")
         print(f"report: {report}")
@@ -328,6 +284,7 @@ def _run_compare(cfg) -> None:
 
 def _run_demo(cfg) -> None:
     from shapes.demo import run_demo
+    from shapes.evaluate import evaluate_run
 
     d = cfg.demo
     options = _plain(d.get("options")) or {}
@@ -339,7 +296,8 @@ def _run_demo(cfg) -> None:
     if unknown:
         raise ConfigError(f"demo.minutes names unknown backbone(s) {unknown}; "
                           f"choose from {', '.join(_groups()['backbone'])}.")
-    report = run_demo(cfg.meshes, d.out, factories, points=d.points, copies=_plain(d.copies), epochs=d.epochs,
+    report = run_demo(cfg.meshes, d.out, factories, fit=_fit, evaluate=evaluate_run, points=d.points,
+                      copies=_plain(d.copies), epochs=d.epochs,
                       mode=cfg.sample.mode, scan_fraction=cfg.sample.scan_fraction, normals=cfg.sample.normals,
                       seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror)
     print(f"demo report: {report}")
@@ -347,13 +305,14 @@ def _run_demo(cfg) -> None:
 
 def _run_predict(cfg) -> None:
     from shapes.predict import format_table, predict_files
+    from shapes.run import trained_run
 
     p = cfg.predict
     if p.input is None:
         raise ConfigError("predict.input is not set; name a scan or mesh file, or a folder of them "
                           "(predict.input=<path>).")
-    result = predict_files(_trained_run(cfg), p.input, poses=p.poses, regime=p.regime, accept=p.accept,
-                           calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
+    result = predict_files(trained_run(cfg.run, cfg.allow_unfinished), p.input, poses=p.poses, regime=p.regime,
+                           accept=p.accept, calibration=p.calibration, seed=cfg.seed, batch_size=p.batch_size, threads=p.threads,
                            out=p.out, units=p.units, clean=_plain(p.clean), normals=p.normals,
                            viewpoint=_plain(p.viewpoint), orientation=p.orientation)
     print(format_table(result))
@@ -366,9 +325,11 @@ def _run_predict(cfg) -> None:
 
 def _run_export(cfg) -> None:
     from shapes.export import export_run
+    from shapes.run import trained_run
 
     e = cfg.export
-    result = export_run(_trained_run(cfg), e.out, format=e.format, points=e.points, threads=e.threads)
+    result = export_run(trained_run(cfg.run, cfg.allow_unfinished), e.out, format=e.format, points=e.points,
+                        threads=e.threads)
     meta = result["metadata"]
     inputs = " and ".join(f"{name} (1, {meta['points']}, 3)" for name in meta["inputs"])
     print(f"wrote {result['path']}: {meta['backbone']} classifier of {len(meta['classes'])} classes taking {inputs}; "

@@ -1,6 +1,8 @@
 """The demo job: parts → sample → train several backbones briefly → evaluate → one report.
 
-Set in our own scenario: a maintenance store sorting a mixed bin of returned parts.
+Set in our own scenario: a maintenance store sorting a mixed bin of returned parts. The demo sits
+beside the other jobs, not above them: the command line hands it the training and evaluation steps
+(``fit``, ``evaluate``) as plain functions.
 """
 
 from __future__ import annotations
@@ -10,30 +12,39 @@ import time
 from pathlib import Path
 from typing import Callable
 
-from shapes.backbones import Backbone
 from shapes.data import build_dataset, read_meta
-from shapes.evaluate import evaluate_run
 from shapes.report import comparison_report, run_report
 from shapes.seeding import seed_everything
-from shapes.train import TrainSettings, train_classifier
 
-__all__ = ["run_demo"]
+__all__ = ["run_demo", "DEMO_COPIES", "DEMO_MINUTES"]
+
+DEMO_COPIES = {"train": 4, "val": 2, "test": 3}  # clouds per part instance and split: few, so the demo is quick
+# training budget of each backbone in minutes (its learning rate anneals within it), sized so the whole
+# demo takes about ten minutes on 2 cores
+DEMO_MINUTES = {"distance": 1.5, "plain": 0.5, "vector_gate": 2.5, "harmonic_attention": 3}
 
 
-def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[str, Callable[[], Backbone]], *,
-             points: int = 512, copies: dict | None = None, epochs: int = 12, seed: int = 0,
+def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[str, Callable], *,
+             fit: Callable[..., Path], evaluate: Callable[..., dict], points: int = 256,
+             copies: dict | None = None, epochs: int = 40, seed: int = 0,
              threads: int | None = None, repeats: int = 3, minutes: dict[str, float] | None = None,
              mirror: float = 0.0, mode: str = "mixed", scan_fraction: float = 0.5,
              normals: str = "estimated") -> Path:
     """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path.
 
+    ``backbones`` maps a name to a function that builds that backbone (or the baseline's options);
+    ``fit(backbone, data_dir, run_dir, **settings)`` trains it into ``run_dir`` (``settings``: the
+    training options ``epochs``, ``seed``, ``threads``, ``max_minutes``, ``mirror``) and
+    ``evaluate(run_dir, data_dir, repeats=, seed=, threads=)`` returns its metrics.
+
     ``minutes`` gives a backbone a wall-time budget for training (its learning rate anneals within
-    it; ``epochs`` is then an upper bound); ``mirror`` is ``TrainSettings.mirror`` for every backbone.
+    it; ``epochs`` is then an upper bound; None: :data:`DEMO_MINUTES`, ``{}``: none); ``copies``: clouds
+    per part instance and split (None: :data:`DEMO_COPIES`); ``mirror`` is ``TrainSettings.mirror`` for every backbone.
     ``mode``, ``scan_fraction`` and ``normals`` are the sampler's (:func:`shapes.data.build_dataset`): by
     default half the clouds are single-view virtual scans and every cloud's normals are estimated
     from its points, so the models are ready for bare scan files.
     """
-    minutes = minutes or {}
+    minutes = dict(DEMO_MINUTES if minutes is None else minutes)
     started = time.perf_counter()
     meshes, out = Path(meshes), Path(out)
     if not (meshes / "catalog.json").is_file() and not any(meshes.glob("*/")):
@@ -43,7 +54,7 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
         write_demo_catalog(meshes, seed=seed)
     data = out / "data"
     print(f"[demo] sampling {points}-point clouds from {meshes}/", flush=True)
-    build_dataset(meshes, data, points=points, copies=copies or {"train": 6, "val": 2, "test": 3}, seed=seed,
+    build_dataset(meshes, data, points=points, copies=DEMO_COPIES if copies is None else copies, seed=seed,
                   mode=mode, scan_fraction=scan_fraction, normals=normals)
     meta = read_meta(data)
     runs = {}
@@ -54,14 +65,8 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
         print(f"[demo] training '{name}' for {limit} on {meta['counts']['train']} clouds", flush=True)
         seed_everything(seed)  # before the backbone is built: building it draws its weights
         backbone = make()
-        settings = TrainSettings(epochs=epochs, seed=seed, threads=threads, max_minutes=budget, mirror=mirror)
-        if type(backbone).__name__ == "D2Options":  # the classical baseline (backbone d2): fitted in one go
-            from shapes.baseline import train_d2
-
-            train_d2(data, out / name, backbone, seed=seed, threads=threads)
-        else:
-            train_classifier(backbone, data, out / name, settings)
-        metrics = evaluate_run(out / name, data, repeats=repeats, seed=seed, threads=threads)
+        fit(backbone, data, out / name, epochs=epochs, seed=seed, threads=threads, max_minutes=budget, mirror=mirror)
+        metrics = evaluate(out / name, data, repeats=repeats, seed=seed, threads=threads)
         metrics["train_seconds"] = time.perf_counter() - t0  # training and evaluation
         run_report(metrics, out / name)
         runs[name] = metrics

@@ -14,11 +14,9 @@ part's surface each scan shows.
 
 from __future__ import annotations
 
-import json
+import dataclasses
 import math
 import os
-import pickle
-import re
 import time
 from pathlib import Path
 
@@ -26,123 +24,24 @@ import numpy as np
 import torch
 from sklearn.metrics import balanced_accuracy_score, confusion_matrix
 
-from shapes._atomic import write_json
+from shapes import _checks as check
 from shapes._runtime import set_threads
-from shapes.backbones import Classifier, build_backbone
 from shapes.data import SCAN, SURFACE, load_split
-from shapes.errors import ConfigError, DataError
+from shapes.errors import DataError
 from shapes.metrics import expected_calibration_error, pose_consistency, reliability_curve
 from shapes.geometry import POSE_REGIMES, check_regime, rotation_about_axis, random_improper, random_poses, uniform_rotations
-from shapes.seeding import torch_generator
+from shapes.report import run_report
+from shapes.run import find_checkpoint, load_classifier, logits_under_poses, read_history, runs_in, trained_run
 from shapes.run import write_metrics
-from shapes.train import CHECKPOINT
+from shapes.seeding import torch_generator
 
-__all__ = ["load_classifier", "find_checkpoint", "logits_under_poses", "score", "invariance_errors",
-           "evaluate_run", "parameter_count", "CALIBRATION_BINS"]
+__all__ = ["score", "invariance_errors", "evaluate_run", "evaluate_runs", "parameter_count", "CALIBRATION_BINS"]
 
 ANGLES_DEG = (0, 30, 60, 90, 120, 150, 180)
 VISIBLE_BINS = (0.0, 0.2, 0.3, 0.4, 0.5, 1.0)  # edges of the visible-share bins of the scans' curve
 NOISE_LEVELS = (0.0, 0.01, 0.02, 0.05)  # in RMS radii of the normalised part
 CALIBRATION_BINS = 10  # equal-width confidence bins of the calibration error (Guo et al. 2017 use 15 on
 # 10 000 images; a test split of a few hundred clouds fills 10 bins better)
-
-
-def find_checkpoint(run: str | os.PathLike) -> Path:
-    """A run folder or a checkpoint file → the checkpoint path; DataError when there is none."""
-    path = Path(run)
-    if path.is_dir():
-        path = path / CHECKPOINT
-    if not path.is_file():
-        raise DataError(f"no checkpoint at '{path}'; expected a run folder written by 'shapes train' or a {CHECKPOINT} file.")
-    return path
-
-
-def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") -> tuple[Classifier, dict]:
-    """Rebuild the classifier from a checkpoint (``weights_only=True``); returns (model in eval mode, meta)."""
-    path = find_checkpoint(run)
-    payload = _load_weights_only(path, device)
-    if ((payload.get("meta") or {}).get("backbone") or {}).get("name") == "d2":
-        from shapes.baseline import load_d2  # the classical baseline: a forest behind the same interface
-
-        model, meta = load_d2(payload, path)
-        return model.to(device).eval(), meta
-    try:
-        meta = payload["meta"]
-        options = dict(meta["backbone"]["options"])
-        if meta["backbone"]["name"] in ("vector_gate", "harmonic_attention") and "signed_normals" not in options:
-            options["signed_normals"] = True  # runs from before the option read the normals' signs
-        backbone = build_backbone(meta["backbone"]["name"], **options)
-        model = Classifier(backbone, len(meta["classes"]), **meta["head"])
-        fit = model.load_state_dict(payload["state_dict"], strict=False)
-    except (KeyError, RuntimeError, EOFError, TypeError, pickle.UnpicklingError) as exc:
-        # torch's messages span lines ("Error(s) in loading ...:" then the details): keep one line
-        detail = " ".join(line.strip() for line in str(exc).splitlines() if line.strip())
-        raise DataError(f"checkpoint '{path}' cannot be read: {detail[:400]}") from exc
-    if fit.missing_keys or fit.unexpected_keys:
-        written = meta.get("versions", {}).get("shapes", "an unknown version")
-        parts = [f"{len(keys)} {what}, e.g. '{keys[0]}'"
-                 for keys, what in ((fit.missing_keys, "weights missing"), (fit.unexpected_keys, "unexpected"))
-                 if keys]
-        raise DataError(
-            f"checkpoint '{path}' does not fit the {meta['backbone']['name']} backbone built from its saved options "
-            f"({'; '.join(parts)}): it was written by shapes {written} with other network code; retrain it with "
-            "`shapes train`."
-        )
-    return model.to(device).eval(), meta
-
-
-def _load_weights_only(path: Path, device) -> dict:
-    """``torch.load(path, weights_only=True)``; whatever goes wrong becomes one DataError line.
-
-    A file whose unpickling would build anything but tensors and plain data is refused unread,
-    and the message never suggests turning that safety off.
-    """
-    try:
-        payload = torch.load(path, map_location=device, weights_only=True)
-    except pickle.UnpicklingError as exc:
-        found = re.search(r"Unsupported global: (GLOBAL \S+)", str(exc))
-        if found or "Weights only load failed" in str(exc):
-            what = f" ({found.group(1)})" if found else ""
-            raise DataError(f"checkpoint '{path}' holds objects other than weights and plain metadata{what}; it was "
-                            "refused unread. Expected a checkpoint written by `shapes train`.") from None
-        raise DataError(f"checkpoint '{path}' is not a torch checkpoint ({_first_line(exc)}); expected a "
-                        "checkpoint written by `shapes train`.") from None
-    except OSError as exc:
-        raise DataError(f"checkpoint '{path}' cannot be read: {exc.strerror or _first_line(exc)}.") from None
-    except (RuntimeError, EOFError, KeyError, ValueError, TypeError, AttributeError, IndexError) as exc:
-        raise DataError(f"checkpoint '{path}' is truncated or corrupted, or not a torch checkpoint "
-                        f"({type(exc).__name__}: {_first_line(exc)}); expected a complete checkpoint written by "
-                        "`shapes train`.") from None
-    if not isinstance(payload, dict):
-        raise DataError(f"checkpoint '{path}' holds a {type(payload).__name__}; expected the dict of weights and "
-                        "metadata written by `shapes train`.")
-    return payload
-
-
-def _first_line(exc: BaseException) -> str:
-    """The first sentence of an exception's message, on one line."""
-    text = " ".join(str(exc).split())
-    return (text.split(". ")[0] if text else type(exc).__name__)[:200]
-
-
-@torch.no_grad()
-def _logits(model, points: torch.Tensor, batch_size: int, normals: torch.Tensor | None = None) -> torch.Tensor:
-    out = []
-    for i in range(0, len(points), batch_size):
-        n = None if normals is None else normals[i:i + batch_size]
-        out.append(model(points[i:i + batch_size], None, n))
-    return torch.cat(out)
-
-
-@torch.no_grad()
-def logits_under_poses(model, points: torch.Tensor, rotations: torch.Tensor, batch_size: int = 32,
-                       normals: torch.Tensor | None = None) -> torch.Tensor:
-    """Logits of ``points (M, N, 3)`` each turned by its own ``rotations (M, 3, 3)`` → (M, classes).
-
-    ``normals (M, N, 3)``, when given, turn with their points (proper or improper ``rotations``).
-    """
-    r = rotations.transpose(-1, -2)
-    return _logits(model, points @ r, batch_size, None if normals is None else normals @ r)
 
 
 def score(pred: np.ndarray, target: np.ndarray, classes: list[str], handed: dict[str, bool]) -> dict:
@@ -171,7 +70,7 @@ def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 
     the largest logit magnitude. An invariant model shows float round-off (~1e-6 in float32);
     a model that sees handedness must change under reflections."""
     gen = torch_generator(seed)
-    base = _logits(model, points, 64, normals)
+    base = logits_under_poses(model, points, None, 64, normals)
     scale = float(base.abs().max().clamp_min(1e-12))
     out = {}
     for name, sampler in (("rotation", uniform_rotations), ("reflection", random_improper)):
@@ -182,7 +81,7 @@ def invariance_errors(model, points: torch.Tensor, trials: int = 8, seed: int = 
         out[name] = worst
     # translation: every backbone is built translation invariant; measure it too
     shift = torch.randn(len(points), 1, 3, generator=gen, dtype=points.dtype) * 5.0
-    out["translation"] = float((_logits(model, points + shift, 64, normals) - base).abs().max()) / scale
+    out["translation"] = float((logits_under_poses(model, points + shift, None, 64, normals) - base).abs().max()) / scale
     return out
 
 
@@ -195,28 +94,27 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
     Each test cloud is scored under ``repeats`` random poses per regime.
     """
     if isinstance(poses, str):
-        raise ConfigError(f"eval.poses should be a list of regimes (e.g. '[any,mirrored]'), got the string {poses!r} instead.")
+        check.fail("eval.poses", "a list of regimes (e.g. '[any,mirrored]')", f"the string {poses!r}")
     for p in poses:
         check_regime(p, POSE_REGIMES, "eval.poses")
-    if repeats < 1:
-        raise ConfigError(f"eval.repeats must be >= 1, got {repeats}.")
+    check.integer("eval.repeats", repeats, low=1)
     set_threads(threads)
     ckpt = find_checkpoint(run)
     model, meta = load_classifier(ckpt)
-    data_dir = data_dir or meta["data"]["dir"]
+    data_dir = data_dir or meta.data.dir
     test = load_split(data_dir, "test")
-    classes = list(meta["classes"])
+    classes, handed = list(meta.classes), meta.handed
     if list(test.meta["classes"]) != classes:
         raise DataError(f"the classes in '{data_dir}' differ from the checkpoint's: "
                         f"{len(test.meta['classes'])} vs {len(classes)} classes.")
-    twin_index = np.array([classes.index(meta["twins"][c]) for c in classes])
+    twin_index = meta.twin_index()
     x = torch.as_tensor(test.points, dtype=torch.float32)
     nrm = torch.as_tensor(test.normals, dtype=torch.float32)
     y = np.asarray(test.labels)
     gen = torch_generator(seed)
-    results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": meta["backbone"],
-                     "train": meta.get("train", {}), "catalog": test.meta.get("catalog"), "twins": dict(meta["twins"]),
-                     "handed": dict(meta["handed"]), "seed": seed, "repeats": repeats, "test_clouds": int(len(x)),
+    results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": dataclasses.asdict(meta.backbone),
+                     "train": meta.train, "catalog": test.meta.get("catalog"), "twins": dict(meta.twins),
+                     "handed": dict(handed), "seed": seed, "repeats": repeats, "test_clouds": int(len(x)),
                      "classes": classes, "regimes": {}}
     kind = np.tile(np.asarray(test.kind), repeats)
     infer_seconds, inferred = 0.0, 0
@@ -231,12 +129,12 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
             targets.append(twin_index[y] if regime == "mirrored" else y)
         prob, target = np.concatenate(probs), np.concatenate(targets)
         pred = prob.argmax(-1)
-        results["regimes"][regime] = score(pred, target, classes, meta["handed"])
+        results["regimes"][regime] = score(pred, target, classes, handed)
         results["regimes"][regime].update(_calibration(prob, target, pred, repeats))
         results["regimes"][regime]["by_kind"] = {
-            name: _kind_score(pred[kind == value], target[kind == value], classes, meta["handed"])
+            name: _kind_score(pred[kind == value], target[kind == value], classes, handed)
             for name, value in (("surface", SURFACE), ("scan", SCAN))}
-    results["scans"] = _scan_condition(model, x, nrm, y, test, twin_index, classes, meta["handed"], gen,
+    results["scans"] = _scan_condition(model, x, nrm, y, test, twin_index, classes, handed, gen,
                                        repeats, batch_size)
     results["hand"] = _hand_test(model, x, nrm, y, twin_index, gen, batch_size)
     few = min(len(x), 32)
@@ -244,11 +142,24 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
     if sweeps:
         results["angle_sweep"] = _angle_sweep(model, x, nrm, y, gen, batch_size)
         results["noise_sweep"] = _noise_sweep(model, x, nrm, y, gen, batch_size)
-    results["cost"] = _cost(model, meta, ckpt.parent, inferred, infer_seconds, batch_size)
+    results["cost"] = _cost(model, meta.train, ckpt.parent, inferred, infer_seconds, batch_size)
     if write:
         write_metrics(ckpt.parent, results)
     return results
 
+
+def evaluate_runs(run: str | os.PathLike, *, allow_unfinished: bool = False, **options) -> list[tuple[dict, Path]]:
+    """``shapes eval``: evaluate ``run`` (a run folder, a checkpoint, ``latest``, or a folder of runs such
+    as a sweep, run by run) and write each run's report beside its metrics. Every run must have
+    finished training unless ``allow_unfinished``. ``options`` go to :func:`evaluate_run`.
+
+    Returns (metrics, report path) per run.
+    """
+    out = []
+    for one in runs_in(run):
+        metrics = evaluate_run(trained_run(one, allow_unfinished), None, **options)
+        out.append((metrics, run_report(metrics, Path(metrics["checkpoint"]).parent)))
+    return out
 
 
 def _calibration(prob: np.ndarray, target: np.ndarray, pred: np.ndarray, repeats: int) -> dict:
@@ -277,21 +188,17 @@ def parameter_count(model) -> int:
     return int(sum(p.numel() for p in model.parameters()))
 
 
-def _cost(model, meta: dict, run_dir: Path, inferred: int, infer_seconds: float, batch_size: int) -> dict:
+def _cost(model, train: dict, run_dir: Path, inferred: int, infer_seconds: float, batch_size: int) -> dict:
     """What the run cost: training wall time and threads (from the run's record), parameters, and
     inference throughput measured over every pose regime of this evaluation."""
-    history = {}
-    try:
-        history = json.loads((run_dir / "train_history.json").read_text())
-    except (OSError, ValueError):
-        pass
-    train_threads = meta.get("train", {}).get("threads")
+    history = read_history(run_dir)
+    train_threads = train.get("threads")
     return {
         "train_seconds": history.get("wall_seconds"),
         "train_epochs": len(history.get("history", [])) or None,
         "train_threads": train_threads,
         "train_threads_note": "train.threads" if train_threads else "torch's default (train.threads unset)",
-        "max_minutes": meta.get("train", {}).get("max_minutes"),
+        "max_minutes": train.get("max_minutes"),
         "parameters": parameter_count(model),
         "eval_threads": int(torch.get_num_threads()),
         "parts_per_second": inferred / infer_seconds if infer_seconds > 0 else None,

@@ -37,7 +37,7 @@ from shapes._atomic import atomic_path
 from shapes._runtime import set_threads, versions
 from shapes.backbones import Classifier
 from shapes.errors import ConfigError, DataError
-from shapes.evaluate import find_checkpoint, load_classifier
+from shapes.run import find_checkpoint, load_classifier
 
 __all__ = ["export_run", "FORMATS", "EXPORTED", "METADATA", "TOLERANCE", "lattice_cloud"]
 
@@ -142,11 +142,11 @@ def export_run(run: str | os.PathLike, out: str | os.PathLike | None = None, *, 
     path = _output_path(ckpt.parent, out)
     model, meta = load_classifier(ckpt)
     if not isinstance(model, Classifier):
-        raise ConfigError(f"run '{ckpt.parent}' holds the {meta['backbone']['name']} baseline, not a torch network; "
+        raise ConfigError(f"run '{ckpt.parent}' holds the {meta.backbone.name} baseline, not a torch network; "
                           "only runs of a trained backbone can be exported as TorchScript.")
     uses_normals = bool(model.uses_normals)
-    n = int(meta["data"]["points"]) if points is None else points
-    k = meta["backbone"]["options"].get("k")
+    n = int(meta.data.points) if points is None else points
+    k = meta.backbone.options.get("k")
     fewest = max(int(k) + 2 if isinstance(k, int) else 2, 2)  # the neighbourhoods take k + 1 others
     if isinstance(n, bool) or not isinstance(n, int) or n < fewest:
         raise ConfigError(f"export.points should be an integer of at least {fewest} (the backbone's k = {k} "
@@ -164,16 +164,16 @@ def export_run(run: str | os.PathLike, out: str | os.PathLike | None = None, *, 
         "dtype": "float32",
         "normalised_inside": "each cloud is centred on its centroid and scaled to unit RMS radius",
         "output": "logits (1, classes); softmax gives probabilities",
-        "classes": list(meta["classes"]),
-        "twins": dict(meta["twins"]),
-        "handed": dict(meta["handed"]),
-        "backbone": meta["backbone"]["name"],
-        "symmetry": meta["backbone"]["symmetry"],
+        "classes": list(meta.classes),
+        "twins": dict(meta.twins),
+        "handed": dict(meta.handed),
+        "backbone": meta.backbone.name,
+        "symmetry": meta.backbone.symmetry,
         "normals": ("unit surface normals; their sign is ignored" if uses_normals
-                    and not meta["backbone"]["options"].get("signed_normals", True)
+                    and not meta.backbone.options.get("signed_normals", True)
                     else "unit outward surface normals" if uses_normals else None),
-        "epoch": meta.get("epoch"),
-        "val_accuracy": meta.get("val_accuracy"),
+        "epoch": meta.epoch,
+        "val_accuracy": meta.val_accuracy,
         "torch": str(torch.__version__),
         "shapes": versions().get("shapes"),
     }

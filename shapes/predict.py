@@ -23,14 +23,15 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from shapes import _checks as check
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
 from shapes.data import MIN_SCAN_POINTS, READ_SUFFIXES, UNITS, CleanSettings, check_spread, clean_points, load_split
 from shapes.data import dense_normals, farthest_point_subsample, normalise, read_points, sample_cloud
 from shapes.data._normals import ORIENTATIONS
-from shapes.errors import ConfigError, DataError, InputError, MeshError, ShapesError
-from shapes.evaluate import find_checkpoint, load_classifier, logits_under_poses
+from shapes.errors import DataError, InputError, MeshError, ShapesError
 from shapes.geometry import check_regime, random_poses
+from shapes.run import RunMeta, find_checkpoint, load_classifier, logits_under_poses
 from shapes.seeding import rng, torch_generator
 
 __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "NORMAL_MODES", "Cloud", "find_inputs",
@@ -64,19 +65,17 @@ class Cloud:
     cleanup: list = field(default_factory=list)
 
 
-def _check(value, name: str, ok: bool, expected: str):
-    if not ok:
-        raise ConfigError(f"predict.{name} should be {expected}, got {value!r} instead.")
-    return value
-
-
-def _check_options(poses, regime, accept, batch_size) -> None:
-    _check(poses, "poses", isinstance(poses, int) and not isinstance(poses, bool) and poses >= 1,
-           "an integer >= 1")
+def _check_options(poses, regime, accept, batch_size, orientation, units, normals, viewpoint) -> np.ndarray | None:
+    """Every option of :func:`predict_files`, checked before any file is read; returns the viewpoint."""
+    check.integer("predict.poses", poses, low=1)
     check_regime(regime, REGIMES, "predict.regime")
-    _check(accept, "accept", isinstance(accept, (int, float)) and not isinstance(accept, bool)
-           and 0.0 < accept <= 1.0, "a share in (0, 1]")
-    _check(batch_size, "batch_size", isinstance(batch_size, int) and batch_size >= 1, "an integer >= 1")
+    check.number("predict.accept", accept, low=0, low_open=True, high=1)
+    check.integer("predict.batch_size", batch_size, low=1)
+    check.optional(check.choice, "predict.orientation", orientation, options=ORIENTATIONS)
+    check.choice("predict.units", units, UNITS)
+    check.choice("predict.normals", normals, NORMAL_MODES)
+    view = check.optional(check.vector, "predict.viewpoint", viewpoint)
+    return None if view is None else np.asarray(view, dtype=np.float64)
 
 
 def find_inputs(path: str | os.PathLike, exclude: str | os.PathLike | None = None) -> list[Path]:
@@ -99,64 +98,59 @@ def find_inputs(path: str | os.PathLike, exclude: str | os.PathLike | None = Non
     return found
 
 
-def _fewest_points(meta: dict) -> tuple[int, str]:
-    k = meta["backbone"]["options"].get("k")
+def _fewest_points(meta: RunMeta) -> tuple[int, str]:
+    k = meta.backbone.options.get("k")
     if k is not None and k + 1 > MIN_SCAN_POINTS:
-        return k + 1, f"the {meta['backbone']['name']} backbone compares each point with its k = {k} nearest"
+        return k + 1, f"the {meta.backbone.name} backbone compares each point with its k = {k} nearest"
     return MIN_SCAN_POINTS, "fewer points carry too little shape to name a part"
 
 
-def normals_k(meta: dict) -> int:
-    """Neighbours of the estimated normals: the run's ``sampler.normals.k`` when recorded, else 16."""
-    sampler = (meta.get("data") or {}).get("sampler") or {}
+def _recorded_normals(meta: RunMeta | dict) -> dict:
+    """The run's ``sampler.normals`` record (a run's record or the plain dict of a checkpoint); ``{}``
+    when it has none (runs from before) or it is unreadable."""
+    if isinstance(meta, RunMeta):
+        sampler = meta.data.sampler
+    else:
+        sampler = (meta.get("data") or {}).get("sampler") or {}
     recorded = sampler.get("normals") if isinstance(sampler, dict) else None
-    k = recorded.get("k", NORMALS_K) if isinstance(recorded, dict) else NORMALS_K
-    return int(k) if isinstance(k, (int, np.integer)) and not isinstance(k, bool) and k >= 3 else NORMALS_K
+    return recorded if isinstance(recorded, dict) else {}
 
 
-def normals_points(meta: dict) -> int:
+def _count(value, low: int) -> int | None:
+    """A recorded count when it is an integer >= ``low``, else None."""
+    ok = isinstance(value, (int, np.integer)) and not isinstance(value, bool) and value >= low
+    return int(value) if ok else None
+
+
+def normals_k(meta: RunMeta | dict) -> int:
+    """Neighbours of the estimated normals: the run's ``sampler.normals.k`` when recorded, else 16."""
+    return _count(_recorded_normals(meta).get("k", NORMALS_K), 3) or NORMALS_K
+
+
+def normals_points(meta: RunMeta) -> int:
     """Points a scan's normals are estimated on: the run's ``sampler.normals.points`` when recorded,
     else the count the run's clouds have (runs from before estimated them after thinning)."""
-    sampler = (meta.get("data") or {}).get("sampler") or {}
-    recorded = sampler.get("normals") if isinstance(sampler, dict) else None
-    n = recorded.get("points") if isinstance(recorded, dict) else None
-    if isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 16:
-        return int(n)
-    return int(meta["data"]["points"])
+    return _count(_recorded_normals(meta).get("points"), 16) or int(meta.data.points)
 
 
-def normals_orientation(meta: dict) -> str:
+def normals_orientation(meta: RunMeta | dict) -> str:
     """How estimated normals are signed without a sensor position: the run's recorded
     ``sampler.normals.orientation`` (so scan files match the training clouds), else single-view: the
     commonest bare point file is one view of a scanner, and on single-view scans of the demo parts
     that rule agrees with the true outward normal on 96.6% of points, MST propagation on 90.3%."""
-    sampler = (meta.get("data") or {}).get("sampler") or {}
-    recorded = sampler.get("normals") if isinstance(sampler, dict) else None
-    way = recorded.get("orientation") if isinstance(recorded, dict) else None
+    way = _recorded_normals(meta).get("orientation")
     return way if way in ORIENTATIONS else "single-view"
 
 
-def _check_viewpoint(viewpoint) -> np.ndarray | None:
-    if viewpoint is None:
-        return None
-    try:
-        view = np.asarray(list(viewpoint), dtype=np.float64)
-    except (TypeError, ValueError):
-        view = np.zeros(0)
-    if view.shape != (3,) or not np.isfinite(view).all():
-        raise ConfigError(f"predict.viewpoint should be null or 3 numbers [x, y, z], got {viewpoint!r} instead.")
-    return view
-
-
-def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool = False, *, units: str = "mm",
+def read_input(path: str | os.PathLike, meta: RunMeta | dict, seed=0, needs_normals: bool = False, *, units: str = "mm",
                clean: CleanSettings | None = None, normals: str = "auto", viewpoint=None,
                orientation: str | None = None) -> Cloud:
     """Read one file into a cloud the run's network can take.
 
     Meshes (STL, OBJ, OFF, GLB, PLY with faces) are sampled with the run's sampler:
-    ``meta["data"]["sampler"]`` gives the mode (a single-view virtual scan when the run was trained on
+    ``meta.data.sampler`` gives the mode (a single-view virtual scan when the run was trained on
     scans only, the full surface otherwise), the oversampling before farthest-point thinning and the
-    noise, and ``meta["data"]["points"]`` the count. The face normals of the sampled points come along.
+    noise, and ``meta.data.points`` the count. The face normals of the sampled points come along.
 
     Point files (E57, PLY without faces, ``.xyz``/``.txt``/``.csv``, ``.npy``, ``.npz``; see
     :func:`shapes.data.read_points`) go, in this order: read (in ``units``, converted to mm) →
@@ -184,12 +178,12 @@ def read_input(path: str | os.PathLike, meta: dict, seed=0, needs_normals: bool 
         backbone that needs them when they cannot be estimated either.
     """
     path = Path(path)
+    meta = meta if isinstance(meta, RunMeta) else RunMeta.from_dict(meta)
     gen = rng(seed)
-    data = meta["data"]
-    target = int(data["points"])
+    target = int(meta.data.points)
     scan = read_points(path, units, seed=gen)
     if scan.is_mesh:
-        sampler = data.get("sampler") or {}
+        sampler = meta.data.sampler
         settings = {"points": target, "oversample": int(sampler.get("oversample", 2)),
                     "noise": float(sampler.get("noise", 0.0))}
         virtual = sampler.get("mode") == "scan"
@@ -281,32 +275,27 @@ def known_scores(probs: np.ndarray, twin_index: np.ndarray, merge_twins: bool) -
     return pair.max(axis=1)
 
 
-def _twin_index(meta: dict) -> np.ndarray:
-    classes = list(meta["classes"])
-    return np.array([classes.index(meta["twins"][c]) for c in classes])
-
-
-def calibrate(model, meta: dict, rotations: torch.Tensor, accept: float, data_dir: str | os.PathLike | None = None,
+def calibrate(model, meta: RunMeta, rotations: torch.Tensor, accept: float, data_dir: str | os.PathLike | None = None,
               batch_size: int = 32) -> dict:
     """The open-set threshold from the run's validation split under the given poses.
 
     ``threshold = numpy.quantile(scores, 1 - accept)``: about ``accept`` of the validation clouds
     score at or above it. Returns the threshold, the rule, the folder and the scores.
     """
-    data_dir = Path(data_dir or meta["data"]["dir"])
+    data_dir = Path(data_dir or meta.data.dir)
     try:
         val = load_split(data_dir, "val")
     except DataError as exc:
         raise DataError(f"cannot calibrate the unknown-part threshold: {exc} Point predict.calibration at the "
                         "dataset folder the run was trained on.") from None
-    if list(val.meta["classes"]) != list(meta["classes"]):
+    if list(val.meta["classes"]) != list(meta.classes):
         raise DataError(f"the classes in '{data_dir}' differ from the checkpoint's "
-                        f"({len(val.meta['classes'])} vs {len(meta['classes'])}); calibrate on the run's own dataset.")
+                        f"({len(val.meta['classes'])} vs {len(meta.classes)}); calibrate on the run's own dataset.")
     if len(val) == 0:
         raise DataError(f"the validation split of '{data_dir}' is empty; nothing to calibrate the threshold on.")
     normals = torch.as_tensor(val.normals) if model.uses_normals else None
     probs, _ = pose_averaged(model, torch.as_tensor(val.points), normals, rotations, batch_size)
-    scores = known_scores(probs.numpy(), _twin_index(meta), model.symmetry == "E3")
+    scores = known_scores(probs.numpy(), meta.twin_index(), model.symmetry == "E3")
     threshold = float(np.quantile(scores, 1.0 - accept))
     return {"value": threshold, "accept": float(accept), "data": str(data_dir), "validation_clouds": int(len(val)),
             "accepted": float((scores >= threshold).mean()),
@@ -315,15 +304,15 @@ def calibrate(model, meta: dict, rotations: torch.Tensor, accept: float, data_di
 
 
 def _row(name: str, cloud: Cloud, probs: np.ndarray, votes: np.ndarray, score: float,
-         threshold: float, meta: dict, symmetry: str) -> dict:
-    classes = list(meta["classes"])
+         threshold: float, meta: RunMeta, symmetry: str) -> dict:
+    classes = list(meta.classes)
     order = np.argsort(-probs, kind="stable")
     top, second = classes[order[0]], classes[order[1]]
     agree = int((votes == order[0]).sum())
     known = bool(score >= threshold)
     notes = []
-    if known and meta["twins"][top] != top and symmetry == "E3":
-        notes.append(f"{HAND_NOTE} ({top} or {meta['twins'][top]})")
+    if known and meta.twins[top] != top and symmetry == "E3":
+        notes.append(f"{HAND_NOTE} ({top} or {meta.twins[top]})")
     return {
         "file": name,
         "answer": top if known else UNKNOWN,
@@ -381,15 +370,7 @@ def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: i
     ShapesError
         A usage error: a bad option, no input, no checkpoint, no calibration data.
     """
-    _check_options(poses, regime, accept, batch_size)
-    if orientation is not None and orientation not in ORIENTATIONS:
-        raise ConfigError(f"predict.orientation should be null or one of {', '.join(ORIENTATIONS)}, "
-                          f"got {orientation!r} instead.")
-    if units not in UNITS:
-        raise ConfigError(f"predict.units should be one of {', '.join(UNITS)}, got {units!r} instead.")
-    if normals not in NORMAL_MODES:
-        raise ConfigError(f"predict.normals should be one of {', '.join(NORMAL_MODES)}, got {normals!r} instead.")
-    view = _check_viewpoint(viewpoint)
+    view = _check_options(poses, regime, accept, batch_size, orientation, units, normals, viewpoint)
     settings = clean if isinstance(clean, CleanSettings) else CleanSettings.from_dict(clean)
     set_threads(threads)
     files = find_inputs(inputs, exclude=out)
@@ -410,7 +391,7 @@ def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: i
     rotations = random_poses(regime, poses, generator=torch_generator(seed))  # (R, 3, 3)
     threshold = calibrate(model, meta, rotations, accept, calibration, batch_size)
     threshold.pop("scores")
-    twin_index, symmetry = _twin_index(meta), model.symmetry
+    twin_index, symmetry = meta.twin_index(), model.symmetry
     rows = []
     for path, name, cloud in zip(files, names, clouds):
         if isinstance(cloud, str):
@@ -421,8 +402,8 @@ def predict_files(run: str | os.PathLike, inputs: str | os.PathLike, *, poses: i
         probs = probs[0].numpy()
         score = float(known_scores(probs[None], twin_index, symmetry == "E3")[0])
         rows.append(_row(name, cloud, probs, votes[0].numpy(), score, threshold["value"], meta, symmetry))
-    result = {"checkpoint": str(ckpt), "backbone": meta["backbone"]["name"], "symmetry": symmetry,
-              "classes": list(meta["classes"]), "poses": poses, "regime": regime, "seed": seed,
+    result = {"checkpoint": str(ckpt), "backbone": meta.backbone.name, "symmetry": symmetry,
+              "classes": list(meta.classes), "poses": poses, "regime": regime, "seed": seed,
               "score": "largest pose-averaged probability" + (
                   "; a handed class counts with its mirror twin (this E3 backbone cannot see hand)"
                   if symmetry == "E3" else ""),

@@ -18,7 +18,6 @@ the last ``resume.pt``; they are done again the same way.
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import random
@@ -39,13 +38,12 @@ from shapes.backbones import Backbone, Classifier
 from shapes.data import load_split, read_meta
 from shapes.errors import ConfigError, DataError, Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
+from shapes.run import CHECKPOINT, HISTORY, RESUME, BackboneRecord, HeadRecord, RunMeta, logits_under_poses
+from shapes.run import read_history, save_checkpoint
 from shapes.seeding import seed_everything, torch_generator
 
-__all__ = ["TrainSettings", "check_settings", "train_classifier", "save_checkpoint", "lr_factor", "reflect_to_twins",
-           "read_resume_state", "CHECKPOINT", "RESUME"]
+__all__ = ["TrainSettings", "check_settings", "train_classifier", "lr_factor", "reflect_to_twins", "read_resume_state"]
 
-CHECKPOINT = "checkpoint.pt"
-RESUME = "resume.pt"  # the latest state of the loop, for `shapes train resume=RUN_DIR`
 RESUMABLE = ("threads", "device")  # settings a resumed run may change (the others must be the run's own)
 
 TRAIN_REGIMES = POSE_REGIMES[:3]  # a mirrored training pose would teach a handed part its twin's shape
@@ -141,23 +139,12 @@ def _validate(model: nn.Module, points: torch.Tensor, normals: torch.Tensor, lab
     model.eval()
     gen = torch_generator(seed)
     rot = random_poses(poses, len(points), generator=gen, dtype=points.dtype, device=points.device)
-    correct, loss = 0, 0.0
-    for start in range(0, len(points), batch_size):
-        r = rot[start:start + batch_size].transpose(-1, -2)
-        x, n = points[start:start + batch_size] @ r, normals[start:start + batch_size] @ r
-        logits, y = model(x, None, n), labels[start:start + batch_size]
-        correct += int((logits.argmax(-1) == y).sum())
-        loss += float(nn.functional.cross_entropy(logits, y, reduction="sum"))
+    logits = logits_under_poses(model, points, rot, batch_size, normals)
+    correct = int((logits.argmax(-1) == labels).sum())
+    loss = sum(float(nn.functional.cross_entropy(logits[i:i + batch_size], labels[i:i + batch_size], reduction="sum"))
+               for i in range(0, len(points), batch_size))  # summed batch by batch, as the logits were made
     n = max(len(points), 1)
     return correct / n, loss / n
-
-
-def save_checkpoint(path: Path, model: Classifier, meta: dict) -> Path:
-    """Weights plus plain metadata; loads with ``torch.load(path, weights_only=True)``."""
-    payload = {"state_dict": {k: v.detach().cpu() for k, v in model.state_dict().items()}, "meta": meta}
-    with atomic_path(path) as tmp:
-        torch.save(payload, tmp)
-    return path
 
 
 class _StopRequests:
@@ -232,11 +219,8 @@ def read_resume_state(run_dir: str | os.PathLike) -> dict:
         raise DataError(f"resume={run_dir}: {RESUME} cannot be read ({type(exc).__name__}: {first}).") from None
     if version != 1:
         raise DataError(f"resume={run_dir}: {RESUME} has format {version!r}; expected 1.")
-    status = state.get("status")
-    try:  # the record says diverged even when the state was written before the loss went
-        status = json.loads((run_dir / "train_history.json").read_text()).get("status", status)
-    except (OSError, ValueError, AttributeError):
-        pass
+    # the record says diverged even when the state was written before the loss went
+    status = read_history(run_dir).get("status", state.get("status"))
     if status == "complete":
         raise DataError(f"resume={run_dir}: the run is complete (all {state['settings']['epochs']} epochs or its "
                         "time budget); nothing to resume. Evaluate it with `shapes eval`.")
@@ -295,12 +279,15 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     y_val = torch.as_tensor(val.labels, dtype=torch.long, device=device)
     n_train = torch.as_tensor(train.normals, dtype=torch.float32, device=device)  # (M, N, 3), turn with the points
     n_val = torch.as_tensor(val.normals, dtype=torch.float32, device=device)
-    classes = list(meta["classes"])
-    twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes], device=device)  # (C,)
+    checkpoint_meta = RunMeta.for_dataset(
+        meta, data_dir, x_train.shape[1], BackboneRecord(backbone.name, backbone.config_dict(), backbone.symmetry),
+        head=HeadRecord(s.head_hidden, s.dropout), train={k: v for k, v in asdict(s).items() if k != "extra"},
+        versions=versions(), extra=dict(s.extra))
+    twin_of = torch.as_tensor(checkpoint_meta.twin_index(), device=device)  # (C,)
     if state is not None:
         _check_resumable(state, s, backbone, world, len(x_train))
 
-    model = Classifier(backbone, len(meta["classes"]), hidden=s.head_hidden, dropout=s.dropout).to(device)
+    model = Classifier(backbone, len(checkpoint_meta.classes), hidden=s.head_hidden, dropout=s.dropout).to(device)
     net = nn.parallel.DistributedDataParallel(model) if world > 1 else model
     decay = [p for n, p in model.named_parameters() if p.dim() > 1]
     no_decay = [p for n, p in model.named_parameters() if p.dim() <= 1]
@@ -317,17 +304,6 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     gen = torch_generator(s.seed)  # the same on every rank: see the permutation below
     loss_fn = nn.CrossEntropyLoss()
 
-    checkpoint_meta = {
-        "classes": list(meta["classes"]),
-        "twins": dict(meta["twins"]),
-        "handed": {k: bool(v) for k, v in meta["handed"].items()},
-        "backbone": {"name": backbone.name, "options": backbone.config_dict(), "symmetry": backbone.symmetry},
-        "head": {"hidden": s.head_hidden, "dropout": s.dropout},
-        "train": {k: v for k, v in asdict(s).items() if k != "extra"},
-        "data": {"dir": str(data_dir), "points": int(x_train.shape[1]), "sampler": meta.get("sampler", {})},
-        "versions": versions(),
-        **s.extra,
-    }
     history, best, started, step, out_of_time = [], (-1.0, -math.inf), time.perf_counter(), 0, False
     ckpt = run_dir / CHECKPOINT
     epoch, saved = 0, None  # the epoch under way, the epoch of the checkpoint on disk
@@ -337,7 +313,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     if state is not None:
         model.load_state_dict(state["model"])
         opt.load_state_dict(state["optimizer"])
-        checkpoint_meta = state["meta"]  # the run's own record (its config, its versions)
+        checkpoint_meta = RunMeta.from_dict(state["meta"])  # the run's own record (its config, its versions)
         history, best, saved, step = list(state["history"]), tuple(state["best"]), state["saved"], state["step"]
         started = time.perf_counter() - state["elapsed"]
         epoch, epoch_done = state["epoch"], state["epoch_done"]
@@ -356,7 +332,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         """``train_history.json`` with the run's status: complete, interrupted (also while training is
         under way) or diverged (``run=latest`` passes over the last two)."""
         if rank == 0 and (history or saved):
-            write_json(run_dir / "train_history.json", {"status": status, "history": history,
+            write_json(run_dir / HISTORY, {"status": status, "history": history,
                                                         "best_val_accuracy": best[0], "best_epoch": saved,
                                                         "wall_seconds": time.perf_counter() - started})
 
@@ -370,7 +346,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                    "history": history, "best": list(best), "saved": saved,
                    "model": {k: v.detach().cpu() for k, v in model.state_dict().items()},
                    "optimizer": opt.state_dict(), "rng": _rng_states(gen, device),
-                   "settings": asdict(s), "meta": checkpoint_meta, "world": world, "train_clouds": len(x_train),
+                   "settings": asdict(s), "meta": checkpoint_meta.to_dict(), "world": world, "train_clouds": len(x_train),
                    "data": os.path.abspath(data_dir)}
         with atomic_path(run_dir / RESUME) as tmp:
             torch.save(payload, tmp)
@@ -459,8 +435,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                     # the validation split is small: among equal accuracies the lower loss is the surer model
                     if (val_acc, -val_loss) > best:
                         best = (val_acc, -val_loss)
-                        save_checkpoint(ckpt, model, {**checkpoint_meta, "epoch": epoch, "val_accuracy": val_acc,
-                                                      "val_loss": val_loss})
+                        save_checkpoint(ckpt, model, checkpoint_meta.scored(epoch, val_acc, val_loss))
                         saved = epoch
                 save_state("complete" if last else "interrupted")
                 write_history("complete" if last else "interrupted")

@@ -9,7 +9,7 @@ import torch
 
 from shapes.cli import main
 from shapes.errors import DataError
-from shapes.evaluate import load_classifier
+from shapes.run import load_classifier
 
 
 class _TouchOnLoad:

@@ -51,7 +51,7 @@ def test_every_evaluated_run_records_its_cost(sweep):
         assert cost["train_threads"] == 1 and cost["eval_threads"] == 1
         # reference: the trainable tensors stored in the checkpoint, counted by torch
         state = torch.load(run / "checkpoint.pt", weights_only=True)["state_dict"]
-        from shapes.evaluate import load_classifier
+        from shapes.run import load_classifier
 
         model, _ = load_classifier(run)
         trainable = {name for name, p in model.named_parameters() if p.requires_grad}
@@ -259,15 +259,15 @@ def test_the_d2_run_matches_a_scikit_learn_forest_on_its_histograms(d2_runs):
 
     from shapes.classic import d2_features
     from shapes.data import load_split
-    from shapes.evaluate import load_classifier
+    from shapes.run import load_classifier
 
     model, meta = load_classifier(d2_runs[0])
-    assert model.symmetry == "E3" and meta["backbone"]["name"] == "d2" and not model.uses_normals
-    train, test = load_split(meta["data"]["dir"], "train"), load_split(meta["data"]["dir"], "test")
+    assert model.symmetry == "E3" and meta.backbone.name == "d2" and not model.uses_normals
+    train, test = load_split(meta.data.dir, "train"), load_split(meta.data.dir, "test")
     # reference: scikit-learn's forest with the same options and seed, on the same D2 histograms
     forest = RandomForestClassifier(n_estimators=20, random_state=0, n_jobs=1).fit(
         d2_features(np.asarray(train.points, dtype=np.float64), bins=64, seed=0), train.labels)
-    want = np.zeros((len(test), len(meta["classes"])))
+    want = np.zeros((len(test), len(meta.classes)))
     want[:, forest.classes_] = forest.predict_proba(d2_features(np.asarray(test.points, dtype=np.float64), bins=64,
                                                                 seed=0))
     with torch.no_grad():

@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from shapes.train import CHECKPOINT, RESUME
+from shapes.run import CHECKPOINT, RESUME
 
 # jitter, random poses and mirroring all draw from the run's generator: the global batch's draws
 # must be split between the processes exactly as one process makes them. Dropout masks are drawn

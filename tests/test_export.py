@@ -12,7 +12,7 @@ import torch
 
 from shapes.cli import main
 from shapes.data import load_split
-from shapes.evaluate import load_classifier
+from shapes.run import load_classifier
 from shapes.export import EXPORTED, lattice_cloud
 
 REPO = Path(__file__).resolve().parent.parent
@@ -87,7 +87,7 @@ def test_the_exported_file_gives_the_runs_logits_without_shapes(backbone, tiny, 
     with torch.no_grad():
         eager = model(torch.from_numpy(points), None, torch.from_numpy(normals)).numpy()
     assert stored["inputs"] == (["points", "normals"] if backbone == "vector_gate" else ["points"])
-    assert stored["classes"] == meta["classes"] and stored["points"] == 64
+    assert stored["classes"] == meta.classes and stored["points"] == 64
     assert np.abs(got[:6] - eager).max() <= 1e-5
     assert np.abs(got[6:] - eager).max() <= 1e-5
     if backbone == "vector_gate":  # the normals are read: other normals, other logits

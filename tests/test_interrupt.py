@@ -52,7 +52,7 @@ def test_a_signal_during_training_gives_one_line_and_keeps_the_checkpoint(signum
 
 
 def test_run_latest_passes_over_an_interrupted_run(tmp_path, monkeypatch, capsys):
-    from shapes.cli import _latest_run
+    from shapes.run import latest_run
 
     monkeypatch.chdir(tmp_path)
     for name, status in (("a", "complete"), ("b", "interrupted")):
@@ -61,7 +61,7 @@ def test_run_latest_passes_over_an_interrupted_run(tmp_path, monkeypatch, capsys
         (run / "checkpoint.pt").write_bytes(b"x")
         (run / "train_history.json").write_text(json.dumps({"status": status, "history": []}))
         os.utime(run / "checkpoint.pt", (1e9 + ord(name), 1e9 + ord(name)))  # b is the newer
-    assert Path(_latest_run("latest")) == Path("runs/train/a")
+    assert latest_run() == Path("runs/train/a")
     (tmp_path / "runs" / "train" / "a" / "checkpoint.pt").unlink()
     assert main(["eval", "run=latest"]) == 2
     assert "1 interrupted or diverged run(s) passed over" in capsys.readouterr().err

@@ -13,11 +13,12 @@ from scipy.spatial.transform import Rotation
 from shapes.backbones import Classifier, build_backbone
 from shapes.cli import main
 from shapes.data import CleanSettings, load_split, read_meta
-from shapes.evaluate import load_classifier
+from shapes.run import load_classifier
 from shapes.geometry import random_poses
 from shapes.predict import HAND_NOTE, UNKNOWN, format_table, normals_k, normals_orientation, predict_files, read_input
 from shapes.seeding import torch_generator
-from shapes.train import TrainSettings, save_checkpoint, train_classifier
+from shapes.run import save_checkpoint
+from shapes.train import TrainSettings, train_classifier
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 CATALOG = json.loads((DEMO / "catalog.json").read_text())
@@ -497,7 +498,7 @@ def test_a_run_from_before_signed_normals_loads_with_signed_normals(tiny, tmp_pa
     # A checkpoint's options are what its weights were trained with. Runs written before the
     # option existed read the normals' signs; loading them with the new default (axes) would keep
     # every weight and silently change what the network computes.
-    from shapes.evaluate import load_classifier
+    from shapes.run import load_classifier
 
     payload = torch.load(tiny["se3"], weights_only=True)
     assert payload["meta"]["backbone"]["options"]["signed_normals"] is False  # new runs record it

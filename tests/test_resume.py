@@ -12,7 +12,8 @@ import torch
 from shapes.backbones import build_backbone
 from shapes.cli import main
 from shapes.errors import ConfigError
-from shapes.train import CHECKPOINT, RESUME, TrainSettings, train_classifier
+from shapes.run import CHECKPOINT, RESUME
+from shapes.train import TrainSettings, train_classifier
 
 # 128 training clouds in batches of 16: 8 steps an epoch; a state every 3 steps
 TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=3",

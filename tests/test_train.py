@@ -95,7 +95,7 @@ def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
 def test_a_checkpoint_that_does_not_fit_the_network_code_gives_one_line(tiny_data, tmp_path):
     # common practice: a checkpoint from other network code must fail loudly, never load half its weights
     from shapes.errors import DataError
-    from shapes.evaluate import load_classifier
+    from shapes.run import load_classifier
 
     ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
                             TrainSettings(epochs=1, batch_size=16, threads=1, max_minutes=1e-8))

@@ -14,7 +14,8 @@ import manifold3d as mf
 import numpy as np
 import trimesh
 
-from shapes.parts import _check as check
+from shapes._checks import Scope
+from shapes.errors import InputError
 from shapes.parts._mesh import to_trimesh
 from shapes.parts._standards import BEARING_ISO15
 
@@ -46,9 +47,10 @@ def ball_bearing(designation: str = "6202", sealed: bool = False, segments: int 
     sealed : model the sealed face (True) or show the balls (False)
     segments : facets around the axis
     """
-    check.choice("ball_bearing", "designation", designation, BEARING_ISO15)
-    sealed = check.boolean("ball_bearing", "sealed", sealed)
-    segments = check.integer("ball_bearing", "segments", segments, 16, 512)
+    check = Scope("ball_bearing: ", InputError, unit="mm")
+    check.choice("designation", designation, BEARING_ISO15)
+    sealed = check.boolean("sealed", sealed)
+    segments = check.integer("segments", segments, 16, 512)
     dims = BEARING_ISO15[designation]
     ri, ro, width = dims["d"] / 2.0, dims["D"] / 2.0, dims["B"]
     section = ro - ri

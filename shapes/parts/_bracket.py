@@ -10,7 +10,7 @@ import numpy as np
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import to_trimesh, with_hand
 
 __all__ = ["angle_bracket"]
@@ -45,14 +45,15 @@ def angle_bracket(
     hand : ``"right"`` or ``"left"``
     """
     f = "angle_bracket"
-    width = check.positive(f, "width", width)
-    leg_base = check.positive(f, "leg_base", leg_base)
-    leg_upright = check.positive(f, "leg_upright", leg_upright)
-    thickness = check.positive(f, "thickness", thickness)
-    hole_d = check.positive(f, "hole_d", hole_d)
-    base_holes = check.integer(f, "base_holes", base_holes, 1, 4)
-    check.choice(f, "hand", hand, ("right", "left"))
-    segments = check.integer(f, "segments", segments, 8, 256)
+    check = Scope(f"{f}: ", InputError, unit="mm")
+    width = check.positive("width", width)
+    leg_base = check.positive("leg_base", leg_base)
+    leg_upright = check.positive("leg_upright", leg_upright)
+    thickness = check.positive("thickness", thickness)
+    hole_d = check.positive("hole_d", hole_d)
+    base_holes = check.integer("base_holes", base_holes, 1, 4)
+    check.choice("hand", hand, ("right", "left"))
+    segments = check.integer("segments", segments, 8, 256)
     if abs(leg_base - leg_upright) < thickness:
         raise InputError(
             f"{f}: legs should differ by >= thickness ({thickness:g} mm) so the bracket is handed, "

@@ -12,7 +12,7 @@ import manifold3d as mf
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import to_trimesh
 from shapes.parts._standards import COARSE_PITCH_ISO261, HEX_NUT_ISO4032, WASHER_CHAMFER_ISO7090, WASHER_ISO7089
 
@@ -58,9 +58,10 @@ def hex_nut(size: str = "M8", chamfer: str = "both", segments: int = 48) -> trim
     chamfer : ``"both"``, ``"one"`` (bottom face only) or ``"none"``: the 30 degree bearing-face chamfer
     segments : facets of the bore circle
     """
-    check.choice("hex_nut", "size", size, HEX_NUT_ISO4032)
-    check.choice("hex_nut", "chamfer", chamfer, ("both", "one", "none"))
-    segments = check.integer("hex_nut", "segments", segments, 12, 512)
+    check = Scope("hex_nut: ", InputError, unit="mm")
+    check.choice("size", size, HEX_NUT_ISO4032)
+    check.choice("chamfer", chamfer, ("both", "one", "none"))
+    segments = check.integer("segments", segments, 12, 512)
     s, m = HEX_NUT_ISO4032[size]["s"], HEX_NUT_ISO4032[size]["m"]
     thread = COARSE_PITCH_ISO261[size]
     body = hex_prism(s, m)
@@ -82,9 +83,10 @@ def plain_washer(size: str = "M8", chamfered: bool = False, segments: int = 96) 
     chamfered : ISO 7090 (True) or the flat ISO 7089 washer (False)
     segments : facets of each circle (vertices lie on the true circles)
     """
-    check.choice("plain_washer", "size", size, WASHER_ISO7089)
-    chamfered = check.boolean("plain_washer", "chamfered", chamfered)
-    segments = check.integer("plain_washer", "segments", segments, 12, 1024)
+    check = Scope("plain_washer: ", InputError, unit="mm")
+    check.choice("size", size, WASHER_ISO7089)
+    chamfered = check.boolean("chamfered", chamfered)
+    segments = check.integer("segments", segments, 12, 1024)
     dims = WASHER_ISO7089[size]
     r1, r2, h = dims["d1"] / 2.0, dims["d2"] / 2.0, dims["h"]
     if not chamfered:

@@ -17,7 +17,7 @@ import numpy as np
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import to_trimesh, with_hand
 from shapes.parts._standards import GEAR_MODULES_ISO54
 
@@ -90,11 +90,12 @@ def _gear_section(outline: np.ndarray, bore_d: float) -> mf.CrossSection:
 
 
 def _check_gear(family: str, module, teeth, face_width, bore_d, root_d_of) -> tuple[float, int, float, float]:
-    module = float(check.choice(family, "module (ISO 54)", module, GEAR_MODULES_ISO54))
-    teeth = check.integer(family, "teeth", teeth, 12, 200)
-    face_width = check.positive(family, "face_width", face_width)
-    bore_d = check.positive(family, "bore_d", bore_d)
-    check.less_than(family, "bore_d", bore_d, "0.8 * root diameter", 0.8 * root_d_of(module, teeth))
+    check = Scope(f"{family}: ", InputError, unit="mm")
+    module = float(check.choice("module (ISO 54)", module, GEAR_MODULES_ISO54))
+    teeth = check.integer("teeth", teeth, 12, 200)
+    face_width = check.positive("face_width", face_width)
+    bore_d = check.positive("bore_d", bore_d)
+    check.less_than("bore_d", bore_d, "0.8 * root diameter", 0.8 * root_d_of(module, teeth))
     return module, teeth, face_width, bore_d
 
 
@@ -137,10 +138,11 @@ def helical_gear(
     bore_d : plain bore diameter
     hand : ``"right"`` or ``"left"`` (the exact mirror image)
     """
-    helix_deg = check.positive("helical_gear", "helix_deg", helix_deg)
+    check = Scope("helical_gear: ", InputError, unit="mm")
+    helix_deg = check.positive("helix_deg", helix_deg)
     if helix_deg > 45.0:
         raise InputError(f"helical_gear: helix_deg should be in (0, 45], got {helix_deg:g} instead.")
-    check.choice("helical_gear", "hand", hand, ("right", "left"))
+    check.choice("hand", hand, ("right", "left"))
     cos_b = math.cos(math.radians(helix_deg))
     module, teeth, face_width, bore_d = _check_gear(
         "helical_gear", module, teeth, face_width, bore_d, lambda m, z: m * z / cos_b - 2.5 * m

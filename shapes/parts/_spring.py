@@ -10,7 +10,7 @@ import numpy as np
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import from_arrays, to_trimesh, with_hand
 
 __all__ = ["compression_spring", "spring_centerline"]
@@ -87,14 +87,15 @@ def compression_spring(
     hand : ``"right"`` (counter-clockwise rising seen from +z) or ``"left"`` (the exact mirror image)
     per_turn, sides : sweep resolution along the wire and around it
     """
-    wire_d = check.positive("compression_spring", "wire_d", wire_d)
-    mean_d = check.positive("compression_spring", "mean_d", mean_d)
-    coils = check.at_least("compression_spring", "coils", coils, 3.0)
-    pitch = check.positive("compression_spring", "pitch", pitch)
-    ground = check.boolean("compression_spring", "ground", ground)
-    check.choice("compression_spring", "hand", hand, ("right", "left"))
-    per_turn = check.integer("compression_spring", "per_turn", per_turn, 8, 256)
-    sides = check.integer("compression_spring", "sides", sides, 6, 64)
+    check = Scope("compression_spring: ", InputError, unit="mm")
+    wire_d = check.positive("wire_d", wire_d)
+    mean_d = check.positive("mean_d", mean_d)
+    coils = check.number("coils", coils, low=3.0, unit="")
+    pitch = check.positive("pitch", pitch)
+    ground = check.boolean("ground", ground)
+    check.choice("hand", hand, ("right", "left"))
+    per_turn = check.integer("per_turn", per_turn, 8, 256)
+    sides = check.integer("sides", sides, 6, 64)
     if mean_d < 3.0 * wire_d:
         raise InputError(f"compression_spring: mean_d should be >= 3 wire_d ({3 * wire_d:g} mm), got {mean_d:g} mm instead.")
     if pitch <= _END_PITCH * wire_d:

@@ -16,7 +16,7 @@ import numpy as np
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import from_arrays, to_trimesh, with_hand
 from shapes.parts._standards import COARSE_PITCH_ISO261
 
@@ -125,13 +125,14 @@ def threaded_stud(
     hand : ``"right"`` or ``"left"``
     columns : half-planes per turn of the helical mesh
     """
-    check.choice("threaded_stud", "size", size, COARSE_PITCH_ISO261)
-    length = check.positive("threaded_stud", "length", length)
-    thread_length = check.positive("threaded_stud", "thread_length", thread_length)
-    check.choice("threaded_stud", "hand", hand, ("right", "left"))
-    columns = check.integer("threaded_stud", "columns", columns, 8, 256)
+    check = Scope("threaded_stud: ", InputError, unit="mm")
+    check.choice("size", size, COARSE_PITCH_ISO261)
+    length = check.positive("length", length)
+    thread_length = check.positive("thread_length", thread_length)
+    check.choice("hand", hand, ("right", "left"))
+    columns = check.integer("columns", columns, 8, 256)
     d, pitch = COARSE_PITCH_ISO261[size]["d"], COARSE_PITCH_ISO261[size]["P"]
-    check.less_than("threaded_stud", "2 * thread_length + 2 * pitch", 2 * thread_length + 2 * pitch, "length", length)
+    check.less_than("2 * thread_length + 2 * pitch", 2 * thread_length + 2 * pitch, "length", length)
     if thread_length < 2 * pitch:
         raise InputError(
             f"threaded_stud: thread_length should be >= 2 pitches ({2 * pitch:g} mm), got {thread_length:g} mm instead."

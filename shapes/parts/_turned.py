@@ -10,7 +10,7 @@ import manifold3d as mf
 import trimesh
 
 from shapes.errors import InputError
-from shapes.parts import _check as check
+from shapes._checks import Scope
 from shapes.parts._mesh import to_trimesh
 
 __all__ = ["bolted_flange", "stepped_shaft", "v_pulley", "bushing"]
@@ -37,15 +37,16 @@ def bolted_flange(
     hub_d, hub_h : raised hub diameter and height above the disc
     """
     f = "bolted_flange"
-    outer_d, bore_d = check.positive(f, "outer_d", outer_d), check.positive(f, "bore_d", bore_d)
-    thickness = check.positive(f, "thickness", thickness)
-    holes = check.integer(f, "holes", holes, 3, 16)
-    bolt_circle_d, hole_d = check.positive(f, "bolt_circle_d", bolt_circle_d), check.positive(f, "hole_d", hole_d)
-    hub_d, hub_h = check.positive(f, "hub_d", hub_d), check.positive(f, "hub_h", hub_h)
-    segments = check.integer(f, "segments", segments, 16, 512)
-    check.less_than(f, "bore_d", bore_d, "hub_d", hub_d)
-    check.less_than(f, "hub_d + hole_d", hub_d + hole_d, "bolt_circle_d", bolt_circle_d)
-    check.less_than(f, "bolt_circle_d + hole_d", bolt_circle_d + hole_d, "outer_d", outer_d)
+    check = Scope(f"{f}: ", InputError, unit="mm")
+    outer_d, bore_d = check.positive("outer_d", outer_d), check.positive("bore_d", bore_d)
+    thickness = check.positive("thickness", thickness)
+    holes = check.integer("holes", holes, 3, 16)
+    bolt_circle_d, hole_d = check.positive("bolt_circle_d", bolt_circle_d), check.positive("hole_d", hole_d)
+    hub_d, hub_h = check.positive("hub_d", hub_d), check.positive("hub_h", hub_h)
+    segments = check.integer("segments", segments, 16, 512)
+    check.less_than("bore_d", bore_d, "hub_d", hub_d)
+    check.less_than("hub_d + hole_d", hub_d + hole_d, "bolt_circle_d", bolt_circle_d)
+    check.less_than("bolt_circle_d + hole_d", bolt_circle_d + hole_d, "outer_d", outer_d)
     if math.pi * bolt_circle_d / holes < 1.5 * hole_d:
         raise InputError(
             f"{f}: {holes} holes of {hole_d:g} mm should leave material between them, got overlapping holes instead."
@@ -81,17 +82,18 @@ def stepped_shaft(
         )
     if not 2 <= len(diameters) <= 6:
         raise InputError(f"{f}: should have 2 to 6 steps, got {len(diameters)} instead.")
-    diameters = [check.positive(f, f"diameters[{i}]", d) for i, d in enumerate(diameters)]
-    lengths = [check.positive(f, f"lengths[{i}]", x) for i, x in enumerate(lengths)]
-    keyway_width, keyway_depth = check.positive(f, "keyway_width", keyway_width), check.positive(f, "keyway_depth", keyway_depth)
-    chamfer = check.positive(f, "chamfer", chamfer)
-    segments = check.integer(f, "segments", segments, 16, 512)
+    check = Scope(f"{f}: ", InputError, unit="mm")
+    diameters = [check.positive(f"diameters[{i}]", d) for i, d in enumerate(diameters)]
+    lengths = [check.positive(f"lengths[{i}]", x) for i, x in enumerate(lengths)]
+    keyway_width, keyway_depth = check.positive("keyway_width", keyway_width), check.positive("keyway_depth", keyway_depth)
+    chamfer = check.positive("chamfer", chamfer)
+    segments = check.integer("segments", segments, 16, 512)
     k = max(range(len(diameters)), key=lambda i: (diameters[i], -i))
     dk, lk = diameters[k], lengths[k]
-    check.less_than(f, "keyway_width", keyway_width, "0.5 * widest diameter", 0.5 * dk)
-    check.less_than(f, "keyway_depth", keyway_depth, "0.3 * widest diameter", 0.3 * dk)
-    check.less_than(f, "keyway_width", keyway_width, "0.7 * widest step length", 0.7 * lk)
-    check.less_than(f, "chamfer", chamfer, "0.4 * end diameters", 0.4 * min(diameters[0], diameters[-1]))
+    check.less_than("keyway_width", keyway_width, "0.5 * widest diameter", 0.5 * dk)
+    check.less_than("keyway_depth", keyway_depth, "0.3 * widest diameter", 0.3 * dk)
+    check.less_than("keyway_width", keyway_width, "0.7 * widest step length", 0.7 * lk)
+    check.less_than("chamfer", chamfer, "0.4 * end diameters", 0.4 * min(diameters[0], diameters[-1]))
     pts, z = [(0.0, 0.0)], 0.0
     for i, (d, length) in enumerate(zip(diameters, lengths)):
         r = d / 2.0
@@ -131,14 +133,15 @@ def v_pulley(
     hub_d, hub_h : hub diameter and its projection beyond the rim
     """
     f = "v_pulley"
-    outer_d, bore_d = check.positive(f, "outer_d", outer_d), check.positive(f, "bore_d", bore_d)
-    grooves = check.integer(f, "grooves", grooves, 1, 4)
-    groove_top_w, groove_depth = check.positive(f, "groove_top_w", groove_top_w), check.positive(f, "groove_depth", groove_depth)
-    groove_deg = check.positive(f, "groove_deg", groove_deg)
-    hub_d, hub_h = check.positive(f, "hub_d", hub_d), check.positive(f, "hub_h", hub_h)
-    segments = check.integer(f, "segments", segments, 16, 512)
-    check.less_than(f, "bore_d", bore_d, "hub_d", hub_d)
-    check.less_than(f, "hub_d", hub_d, "outer_d - 3 * groove_depth - 2", outer_d - 3.0 * groove_depth - 2.0)  # hub inside the rim
+    check = Scope(f"{f}: ", InputError, unit="mm")
+    outer_d, bore_d = check.positive("outer_d", outer_d), check.positive("bore_d", bore_d)
+    grooves = check.integer("grooves", grooves, 1, 4)
+    groove_top_w, groove_depth = check.positive("groove_top_w", groove_top_w), check.positive("groove_depth", groove_depth)
+    groove_deg = check.positive("groove_deg", groove_deg)
+    hub_d, hub_h = check.positive("hub_d", hub_d), check.positive("hub_h", hub_h)
+    segments = check.integer("segments", segments, 16, 512)
+    check.less_than("bore_d", bore_d, "hub_d", hub_d)
+    check.less_than("hub_d", hub_d, "outer_d - 3 * groove_depth - 2", outer_d - 3.0 * groove_depth - 2.0)  # hub inside the rim
     bottom_w = groove_top_w - 2.0 * groove_depth * math.tan(math.radians(groove_deg / 2.0))
     if bottom_w <= 0.1:
         raise InputError(
@@ -175,17 +178,18 @@ def bushing(
     flange_d, flange_t : collar at z = 0; both 0 for a plain spacer
     """
     f = "bushing"
-    outer_d, inner_d = check.positive(f, "outer_d", outer_d), check.positive(f, "inner_d", inner_d)
-    length = check.positive(f, "length", length)
-    flange_d, flange_t = check.at_least(f, "flange_d", flange_d, 0.0), check.at_least(f, "flange_t", flange_t, 0.0)
-    segments = check.integer(f, "segments", segments, 12, 1024)
-    check.less_than(f, "inner_d", inner_d, "outer_d", outer_d)
+    check = Scope(f"{f}: ", InputError, unit="mm")
+    outer_d, inner_d = check.positive("outer_d", outer_d), check.positive("inner_d", inner_d)
+    length = check.positive("length", length)
+    flange_d, flange_t = check.number("flange_d", flange_d, low=0.0, unit=""), check.number("flange_t", flange_t, low=0.0, unit="")
+    segments = check.integer("segments", segments, 12, 1024)
+    check.less_than("inner_d", inner_d, "outer_d", outer_d)
     ri, ro = inner_d / 2.0, outer_d / 2.0
     if flange_d == 0.0 and flange_t == 0.0:
         pts = [(ri, 0.0), (ro, 0.0), (ro, length), (ri, length)]
     else:
-        check.less_than(f, "outer_d", outer_d, "flange_d", flange_d)
-        check.less_than(f, "flange_t", flange_t, "length", length)
+        check.less_than("outer_d", outer_d, "flange_d", flange_d)
+        check.less_than("flange_t", flange_t, "length", length)
         if flange_t <= 0:
             raise InputError(f"{f}: flange_t should be > 0 mm with a flange, got {flange_t:g} instead.")
         pts = [(ri, 0.0), (flange_d / 2.0, 0.0), (flange_d / 2.0, flange_t), (ro, flange_t), (ro, length), (ri, length)]
