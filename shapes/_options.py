@@ -1,6 +1,7 @@
 """Type and range checks of the command line's options, run before any work starts.
 
-Plain dicts in, :class:`shapes.errors.ConfigError` out (one line naming the option, what was expected
+The overrides of the command line (:func:`check_overrides`, with Hydra's parser) or plain dicts in
+(:func:`check_options`), :class:`shapes.errors.ConfigError` out (one line naming the option, what was expected
 and what was found). The command line calls :func:`check_options` once per composed config (once per
 swept value); the jobs check their own arguments again where they are called from Python.
 
@@ -14,9 +15,10 @@ from __future__ import annotations
 import numbers
 
 from shapes import _checks as check
+from shapes.errors import ConfigError
 from shapes.geometry import POSE_REGIMES, check_regime
 
-__all__ = ["check_options", "eval_poses", "VERB_SECTIONS"]
+__all__ = ["check_options", "check_overrides", "eval_poses", "VERB_SECTIONS"]
 
 POSES = tuple(POSE_REGIMES)  # cad, upright, any, mirrored
 TRAIN_POSES = POSES[:3]
@@ -197,3 +199,39 @@ def check_options(verb: str, cfg: dict, defaults: dict | None = None) -> None:
             rule(name, value)
         elif value is not None and default is not None:
             _like_default(name, value, default)
+
+
+def check_overrides(overrides: list[str], multirun: bool, verb: str, *, compose, groups: dict) -> None:
+    """Compose the config (``compose(overrides)``) once per swept value and check the options ``verb``
+    reads (:func:`check_options`), so a bad option fails before any work starts. ``groups``: the config
+    groups and their choices (``{"backbone": ["distance", ...]}``). No ``verb``: the overrides alone."""
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+    from omegaconf import OmegaConf
+
+    try:
+        parsed = OverridesParser.create().parse_overrides(overrides)
+    except Exception as exc:  # hydra's parse errors carry a multi-line message
+        raise ConfigError(f"cannot read the options {overrides}: {str(exc).splitlines()[0]}") from exc
+    variants: list[list[str]] = [[]]
+    for ov in parsed:
+        key = ov.get_key_element()
+        values = list(ov.sweep_string_iterator()) if ov.is_sweep_override() else [ov.get_value_element_as_str()]
+        if ov.is_sweep_override() and not multirun:
+            raise ConfigError(f"'{key}' has several values {values}; add -m to sweep over them.")
+        if key in groups:
+            for v in values:
+                if v not in groups[key]:
+                    raise ConfigError(f"unknown {key} '{v}'; choose one of: {', '.join(groups[key])}.")
+        if key.startswith("hydra"):
+            continue
+        variants = [prev + [f"{key}={v}"] for prev in variants for v in values]
+    defaults = None
+    for variant in variants[:64]:
+        try:
+            cfg = OmegaConf.to_container(compose(variant), resolve=True)
+        except Exception as exc:
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise ConfigError(f"bad option in {variant}: {first}") from exc
+        if verb:
+            defaults = defaults or OmegaConf.to_container(compose([]), resolve=True)
+            check_options(verb, cfg, defaults)

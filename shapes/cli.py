@@ -74,42 +74,9 @@ def _compose(overrides: list[str]):
 
 
 def _check_overrides(overrides: list[str], multirun: bool, verb: str = "") -> None:
-    """Compose the config once per swept value and check the options ``verb`` reads (types and
-    ranges, :mod:`shapes._options`), so a bad option fails before any work starts."""
-    from omegaconf import OmegaConf
+    from shapes._options import check_overrides
 
-    from shapes._options import check_options
-
-    from hydra.core.override_parser.overrides_parser import OverridesParser
-
-    try:
-        parsed = OverridesParser.create().parse_overrides(overrides)
-    except Exception as exc:  # hydra's parse errors carry a multi-line message
-        raise ConfigError(f"cannot read the options {overrides}: {str(exc).splitlines()[0]}") from exc
-    groups = _groups()
-    variants: list[list[str]] = [[]]
-    for ov in parsed:
-        key = ov.get_key_element()
-        values = list(ov.sweep_string_iterator()) if ov.is_sweep_override() else [ov.get_value_element_as_str()]
-        if ov.is_sweep_override() and not multirun:
-            raise ConfigError(f"'{key}' has several values {values}; add -m to sweep over them.")
-        if key in groups:
-            for v in values:
-                if v not in groups[key]:
-                    raise ConfigError(f"unknown {key} '{v}'; choose one of: {', '.join(groups[key])}.")
-        if key.startswith("hydra"):
-            continue
-        variants = [prev + [f"{key}={v}"] for prev in variants for v in values]
-    defaults = None
-    for variant in variants[:64]:
-        try:
-            cfg = OmegaConf.to_container(_compose(variant), resolve=True)
-        except Exception as exc:
-            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-            raise ConfigError(f"bad option in {variant}: {first}") from exc
-        if verb:
-            defaults = defaults or OmegaConf.to_container(_compose([]), resolve=True)
-            check_options(verb, cfg, defaults)
+    check_overrides(overrides, multirun, verb, compose=_compose, groups=_groups())
 
 
 def _verb_help(verb: str, overrides: list[str]) -> str:
@@ -211,15 +178,18 @@ def _run_train(cfg) -> None:
         backbone = backbone_from_config(_plain(cfg.backbone))
         ckpt = _fit(backbone, cfg.data, run_dir, **vars(settings))
     except BaseException:
-        if run_dir.is_dir() and not any(run_dir.iterdir()):
-            run_dir.rmdir()  # Hydra made the folder before the job failed: leave nothing behind
+        _drop_if_empty(run_dir)  # Hydra made the folder before the job failed: leave nothing behind
         raise
     if int(os.environ.get("RANK", "0")) != 0:  # under torchrun only the first process writes and reports
-        if run_dir.is_dir() and not any(run_dir.iterdir()):
-            run_dir.rmdir()  # Hydra made a folder of this process's own (another second than rank 0's)
+        _drop_if_empty(run_dir)  # Hydra made a folder of this process's own (another second than rank 0's)
         return
     write_text(run_dir / "config.yaml", OmegaConf.to_yaml(cfg, resolve=True))
     print(f"best checkpoint: {ckpt}\nnext: shapes eval run={run_dir}")
+
+
+def _drop_if_empty(folder: Path) -> None:
+    if folder.is_dir() and not any(folder.iterdir()):
+        folder.rmdir()
 
 
 def _resume_train(cfg) -> None:
@@ -229,24 +199,12 @@ def _resume_train(cfg) -> None:
     from omegaconf import OmegaConf
 
     from shapes._atomic import write_text
-    from shapes._runtime import set_threads
-    from shapes.backbones import build_backbone
-    from shapes.run import RunMeta
-    from shapes.seeding import seed_everything
-    from shapes.train import TrainSettings, check_settings, read_resume_state, train_classifier
+    from shapes.train import resume_training
 
     run_dir = Path(cfg.resume)
-    state = read_resume_state(run_dir)
     given = {o.split("=", 1)[0].lstrip("+~") for o in HydraConfig.get().overrides.task}
-    recorded = dict(state["settings"])
-    recorded.update({key: cfg.train[key] for key in ("threads", "device") if f"train.{key}" in given})
-    settings = check_settings(TrainSettings(**recorded))
-    set_threads(settings.threads)
-    seed_everything(settings.seed)
-    recorded = RunMeta.from_dict(state["meta"]).backbone
-    backbone = build_backbone(recorded.name, **recorded.options)
-    print(f"resuming {run_dir} at epoch {state['epoch'] + state['epoch_done']}, step {state['step']}", flush=True)
-    ckpt = train_classifier(backbone, state["data"], run_dir, settings, resume=True)
+    changes = {k: cfg.train[k] for k in ("threads", "device") if f"train.{k}" in given}
+    ckpt, settings = resume_training(run_dir, **changes)
     if int(os.environ.get("RANK", "0")) != 0:
         return
     config = settings.extra.get("config")

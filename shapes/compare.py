@@ -16,16 +16,17 @@ import os
 import statistics
 from pathlib import Path
 
+from shapes import _checks as check
 from shapes._atomic import write_json
 from shapes.errors import ConfigError, DataError
 from shapes.geometry import POSE_REGIMES, check_regime
-from shapes.run import METRICS, read_metrics
+from shapes.run import CHECKPOINT, HISTORY, METRICS, read_metrics
 from shapes.report import REGIME_NOTES, pyplot, save_figure, write_report
 
 __all__ = ["find_runs", "load_run_metrics", "group_runs", "summarize", "compare_runs"]
 
 # the run markers: a folder holding one of these is a run; any other folder is searched for runs
-_RUN_FILES = (METRICS, "checkpoint.pt", "train_history.json")
+_RUN_FILES = (METRICS, CHECKPOINT, HISTORY)
 # settings that do not make a different configuration: the seed is what a group pools over, the
 # rest change speed, not the model
 _NOT_CONFIG = ("seed", "threads", "device")
@@ -227,9 +228,7 @@ def compare_runs(paths, out: str | os.PathLike, *, poses=None) -> Path:
     if poses is None:
         regimes = shared
     else:
-        if isinstance(poses, str):
-            poses = [poses]
-        regimes = [check_regime(p, POSE_REGIMES, "compare.poses") for p in poses]
+        regimes = check.listed("compare.poses", poses, lambda n, v: check_regime(v, POSE_REGIMES, n), one_as_list=True)
         missing = [r for r in regimes if r not in shared]
         if missing:
             lacking = next(m["run"] for m in runs if any(r not in m["regimes"] for r in missing))

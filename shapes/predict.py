@@ -17,7 +17,6 @@ is reported as unknown, with its nearest class.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -26,13 +25,13 @@ import torch
 from shapes import _checks as check
 from shapes._atomic import write_json
 from shapes._runtime import set_threads
-from shapes.data import MIN_SCAN_POINTS, READ_SUFFIXES, UNITS, CleanSettings, check_spread, clean_points, load_split
-from shapes.data import dense_normals, farthest_point_subsample, normalise, read_points, sample_cloud
+from shapes.data import MIN_SCAN_POINTS, NORMALS_K, READ_SUFFIXES, UNITS, CleanSettings, Cloud, CloudRecipe, load_split
+from shapes.data import prepare_cloud
 from shapes.data._normals import ORIENTATIONS
-from shapes.errors import DataError, InputError, MeshError, ShapesError
+from shapes.errors import DataError, MeshError, ShapesError
 from shapes.geometry import check_regime, random_poses
 from shapes.run import RunMeta, find_checkpoint, load_classifier, logits_under_poses
-from shapes.seeding import rng, torch_generator
+from shapes.seeding import torch_generator
 
 __all__ = ["SUPPORTED", "REGIMES", "UNKNOWN", "HAND_NOTE", "NORMALS_K", "NORMAL_MODES", "Cloud", "find_inputs",
            "read_input", "normals_k", "normals_points", "normals_orientation",
@@ -43,26 +42,6 @@ NORMAL_MODES = ("auto", "file", "estimated")
 REGIMES = ("cad", "upright", "any")  # a mirror pose would change a handed part into its twin
 UNKNOWN = "unknown (not a known part)"
 HAND_NOTE = "hand not determinable by this backbone"
-NORMALS_K = 16  # neighbourhood of the PCA normals estimated for a point file that has none
-
-
-@dataclass
-class Cloud:
-    """One input made ready for the network.
-
-    points : (N, 3) float32, centroid 0 and unit RMS radius
-    normals : (N, 3) float32 unit vectors (from the file or estimated), or None when the file has
-        none and the backbone takes none
-    source : how the cloud was made, for the report
-    notes : what the reader noted (units, thinning while reading, ignored columns)
-    cleanup : one dict per clean-up step run (``step``, ``removed``, ``why``)
-    """
-
-    points: np.ndarray
-    normals: np.ndarray | None
-    source: str
-    notes: list = field(default_factory=list)
-    cleanup: list = field(default_factory=list)
 
 
 def _check_options(poses, regime, accept, batch_size, orientation, units, normals, viewpoint) -> np.ndarray | None:
@@ -145,107 +124,21 @@ def normals_orientation(meta: RunMeta | dict) -> str:
 def read_input(path: str | os.PathLike, meta: RunMeta | dict, seed=0, needs_normals: bool = False, *, units: str = "mm",
                clean: CleanSettings | None = None, normals: str = "auto", viewpoint=None,
                orientation: str | None = None) -> Cloud:
-    """Read one file into a cloud the run's network can take.
-
-    Meshes (STL, OBJ, OFF, GLB, PLY with faces) are sampled with the run's sampler:
-    ``meta.data.sampler`` gives the mode (a single-view virtual scan when the run was trained on
-    scans only, the full surface otherwise), the oversampling before farthest-point thinning and the
-    noise, and ``meta.data.points`` the count. The face normals of the sampled points come along.
-
-    Point files (E57, PLY without faces, ``.xyz``/``.txt``/``.csv``, ``.npy``, ``.npz``; see
-    :func:`shapes.data.read_points`) go, in this order: read (in ``units``, converted to mm) →
-    clean (:func:`shapes.data.clean_points` with ``clean``; None: the defaults) → normals, when
-    they must be estimated, on up to the run's ``sampler.normals.points`` of the points, as the
-    training scans' were (:func:`shapes.data.dense_normals`) → thin to the training point count by
-    farthest-point subsampling (kept whole when smaller, but at least enough for the backbone's
-    neighbourhoods) → normalise to unit RMS radius.
-
-    Normals (only when the backbone takes them): ``normals="auto"`` uses the file's and estimates them
-    when it has none, ``"file"`` uses only the file's (an error when it has none), ``"estimated"``
-    ignores the file's. Estimation is :func:`shapes.data.estimate_normals` (local PCA) before thinning,
-    with k from the run's metadata (``sampler.normals.k``, else 16), each normal turned toward the
-    sensor: ``viewpoint`` (the file's frame and units) if given, else the file's own (an E57 scan's
-    pose, a PLY ``comment viewpoint``), else by ``orientation`` (``"single-view"`` for one view
-    of a scanner, ``"propagate"`` for a cloud merged from several views), by default the way the
-    run's training scans were signed (``sampler.normals.orientation``), else single-view.
-    ``source`` says which.
-    ``seed`` (None, int or numpy Generator) drives the reading, clean-up, sampling and thinning.
-
-    Raises
-    ------
-    MeshError
-        Unreadable file, degenerate cloud, too few points after clean-up, or no normals for a
-        backbone that needs them when they cannot be estimated either.
+    """Read one file into a cloud the run's network can take: :func:`shapes.data.prepare_cloud` with the
+    recipe of the run's training clouds (``meta``, the run's record or its plain dict): the point count,
+    the sampler's settings, k and the point count of the estimated normals (``sampler.normals.k``, else
+    16; ``sampler.normals.points``, else the point count), their sign without a sensor position
+    (``orientation``, else the run's ``sampler.normals.orientation``, else single-view), and the fewest
+    points the backbone's neighbourhoods take. See there for ``units``, ``clean``, ``normals``,
+    ``viewpoint`` and ``seed``.
     """
-    path = Path(path)
     meta = meta if isinstance(meta, RunMeta) else RunMeta.from_dict(meta)
-    gen = rng(seed)
-    target = int(meta.data.points)
-    scan = read_points(path, units, seed=gen)
-    if scan.is_mesh:
-        sampler = meta.data.sampler
-        settings = {"points": target, "oversample": int(sampler.get("oversample", 2)),
-                    "noise": float(sampler.get("noise", 0.0))}
-        virtual = sampler.get("mode") == "scan"
-        points, nrm, _ = sample_cloud(scan.mesh, virtual, settings, gen)  # as the shards were
-        return Cloud(points.astype(np.float32), nrm.astype(np.float32),
-                     f"mesh, {'virtual scan' if virtual else 'surface'} of {target} points")
     fewest, why = _fewest_points(meta)
-    if len(scan.points) < fewest:
-        raise MeshError(f"scan file {path} has {len(scan.points)} points; need at least {fewest} ({why}).")
-    source = f"points, {scan.rows}"
-    if len(scan.points) < scan.rows:
-        source += f" read as {len(scan.points)}"
-    steps = []
-    settings = clean if clean is not None else CleanSettings()
-    if settings.stray_points or settings.support_plane or settings.cluster:
-        cleaned = clean_points(scan.points, settings, seed=gen)
-        steps = cleaned.steps
-        removed = len(scan.points) - len(cleaned.keep)
-        if removed:
-            scan = scan.subset(cleaned.keep)
-            source += f", {removed} removed by clean-up,"
-            check_spread(scan.points, f"scan file {path} after clean-up", fewest)
-    if len(scan.points) < fewest:
-        raise MeshError(f"scan file {path} has {len(scan.points)} points after clean-up; need at least {fewest} ({why}).")
-    if normals == "estimated":
-        scan.normals = None
-    elif normals == "file" and needs_normals and scan.normals is None:
-        raise MeshError(f"scan file {path} has no surface normals and predict.normals=file forbids estimating them; "
-                        "give a PLY with nx ny nz, 6 columns or a .npz with 'normals', or set predict.normals=auto.")
-    points, nrm = scan.points, scan.normals
-    sensors = scan.sensor_of_points()
-    if viewpoint is not None:
-        sensors = np.broadcast_to(np.asarray(viewpoint, dtype=np.float64) * UNITS[units], points.shape)
-    how, before = None, len(points)
-    if needs_normals and nrm is None:  # estimated where the points are dense, as the training scans were
-        k, way = normals_k(meta), orientation or normals_orientation(meta)
-        dense = normals_points(meta)
-        try:
-            points, nrm, _ = dense_normals(points, dense, k, gen, orientation=way, sensors=sensors)
-        except InputError as exc:  # e.g. too few points for the neighbourhoods
-            raise MeshError(f"scan file {path} has no surface normals and they cannot be estimated ({exc}); "
-                            "give a mesh, a PLY with nx ny nz or a .npz with 'normals'.") from None
-        if sensors is not None:
-            how = "toward the option's viewpoint" if viewpoint is not None else "toward the file's sensor position"
-        else:
-            how = "MST orientation" if way == "propagate" else f"{way} orientation"
-        how = f"local PCA on {len(points)} points, k={k}, {how}"
-    if len(points) > target:
-        keep = farthest_point_subsample(points, target, seed=gen)
-        points, nrm = points[keep], None if nrm is None else nrm[keep]
-    if before > len(points):
-        source += f" thinned to {len(points)}"
-    try:
-        points, _, _ = normalise(points)
-    except InputError as exc:  # e.g. every point at one spot
-        raise MeshError(f"scan file {path}: {exc}") from None
-    if how is not None:
-        source += f", normals estimated ({how})"
-    elif nrm is not None:
-        source += " with normals"
-    return Cloud(points.astype(np.float32), None if nrm is None else nrm.astype(np.float32), source,
-                 notes=list(scan.notes), cleanup=steps)
+    recipe = CloudRecipe(points=int(meta.data.points), sampler=meta.data.sampler, fewest=fewest, why=why,
+                         normals_k=normals_k(meta), normals_points=normals_points(meta),
+                         orientation=orientation or normals_orientation(meta))
+    return prepare_cloud(path, recipe, seed, needs_normals, units=units, clean=clean, normals=normals,
+                         viewpoint=viewpoint)
 
 
 @torch.no_grad()

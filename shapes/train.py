@@ -20,9 +20,6 @@ from __future__ import annotations
 
 import math
 import os
-import random
-import signal
-import threading
 import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -34,17 +31,18 @@ from torch import nn
 from shapes import _checks as check
 from shapes._atomic import atomic_path, signals_deferred, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
-from shapes.backbones import Backbone, Classifier
+from shapes._resume import RESUMABLE, StopRequests, check_resumable, read_resume_state, rng_states, set_rng_states
+from shapes.backbones import Backbone, Classifier, build_backbone
 from shapes.data import load_split, read_meta
-from shapes.errors import ConfigError, DataError, Interrupted, TrainingError
+from shapes.errors import ConfigError, Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.run import CHECKPOINT, HISTORY, RESUME, BackboneRecord, HeadRecord, RunMeta, logits_under_poses
-from shapes.run import read_history, save_checkpoint
+from shapes.run import save_checkpoint
 from shapes.seeding import seed_everything, torch_generator
 
-__all__ = ["TrainSettings", "check_settings", "train_classifier", "lr_factor", "reflect_to_twins", "read_resume_state"]
+__all__ = ["TrainSettings", "check_settings", "train_classifier", "resume_training", "lr_factor", "reflect_to_twins",
+           "read_resume_state"]
 
-RESUMABLE = ("threads", "device")  # settings a resumed run may change (the others must be the run's own)
 
 TRAIN_REGIMES = POSE_REGIMES[:3]  # a mirrored training pose would teach a handed part its twin's shape
 
@@ -147,108 +145,6 @@ def _validate(model: nn.Module, points: torch.Tensor, normals: torch.Tensor, lab
     return correct / n, loss / n
 
 
-class _StopRequests:
-    """Ctrl-C and SIGTERM while training: noted, and acted on by :meth:`check` between two steps.
-
-    Signal masks cannot do this: a process-directed signal goes to any thread that does not block it
-    (torch keeps threads of its own), and Python then runs its handler in the main thread wherever
-    that thread is. A second signal stops at once (``hard``).
-    """
-
-    SIGNALS = (signal.SIGINT, signal.SIGTERM)
-
-    def __init__(self):
-        self.status: int | None = None
-        self.hard = False
-        self._previous: dict = {}
-
-    def __enter__(self) -> "_StopRequests":
-        if threading.current_thread() is threading.main_thread():  # handlers can be set only there
-            self._previous = {sig: signal.signal(sig, self._note) for sig in self.SIGNALS}
-        return self
-
-    def __exit__(self, *exc) -> None:
-        for sig, handler in self._previous.items():
-            signal.signal(sig, handler)
-
-    def _note(self, signum, frame) -> None:
-        if self.status is not None:
-            self.hard = True
-            raise Interrupted("interrupted", self.status)
-        self.status = 128 + signum
-
-    def check(self) -> None:
-        if self.status is not None:
-            raise Interrupted("interrupted", self.status)
-
-
-def _rng_states(gen: torch.Generator, device: torch.device) -> dict:
-    """Every random-number state the loop draws from, as tensors and plain data (``weights_only`` loads them)."""
-    name, keys, pos, has_gauss, cached = np.random.get_state()
-    return {"python": random.getstate(), "numpy": [name, keys.tolist(), int(pos), int(has_gauss), float(cached)],
-            "torch": torch.get_rng_state(), "generator": gen.get_state(),
-            "cuda": torch.cuda.get_rng_state_all() if device.type == "cuda" else None}
-
-
-def _set_rng_states(states: dict, gen: torch.Generator, device: torch.device) -> None:
-    version, internal, gauss = states["python"]
-    random.setstate((version, tuple(internal), gauss))
-    name, keys, pos, has_gauss, cached = states["numpy"]
-    np.random.set_state((name, np.asarray(keys, dtype=np.uint32), pos, has_gauss, cached))
-    torch.set_rng_state(states["torch"])
-    gen.set_state(states["generator"])
-    if device.type == "cuda" and states.get("cuda") is not None:
-        torch.cuda.set_rng_state_all(states["cuda"])
-
-
-def read_resume_state(run_dir: str | os.PathLike) -> dict:
-    """The ``resume.pt`` of a run folder (``weights_only=True``); one DataError line when it is
-    missing or unreadable, or when the run cannot go on (it finished, or diverged)."""
-    run_dir = Path(run_dir)
-    path = run_dir / RESUME
-    if not run_dir.is_dir():
-        raise DataError(f"resume={run_dir}: no such run folder; expected a folder written by `shapes train`.")
-    if not path.is_file():
-        raise DataError(f"resume={run_dir}: the folder has no {RESUME} (written by `shapes train` at the end of "
-                        "each epoch, every train.save_every steps and when stopped); it cannot be resumed.")
-    try:
-        state = torch.load(path, map_location="cpu", weights_only=True)
-        version = state["format"]
-    except Exception as exc:  # torch's unpickling errors are many and multi-line
-        first = " ".join(str(exc).split())[:200] or type(exc).__name__
-        raise DataError(f"resume={run_dir}: {RESUME} cannot be read ({type(exc).__name__}: {first}).") from None
-    if version != 1:
-        raise DataError(f"resume={run_dir}: {RESUME} has format {version!r}; expected 1.")
-    # the record says diverged even when the state was written before the loss went
-    status = read_history(run_dir).get("status", state.get("status"))
-    if status == "complete":
-        raise DataError(f"resume={run_dir}: the run is complete (all {state['settings']['epochs']} epochs or its "
-                        "time budget); nothing to resume. Evaluate it with `shapes eval`.")
-    if status == "diverged":
-        raise DataError(f"resume={run_dir}: the run diverged (a non-finite loss), and resuming would diverge the "
-                        "same way; retrain with a lower train.lr.")
-    return state
-
-
-def _check_resumable(state: dict, s: TrainSettings, backbone: Backbone, world: int, n_train: int) -> None:
-    """ConfigError naming the first thing that differs between the run's state and this call."""
-    theirs, ours = state["settings"], asdict(s)
-    for key in ours:
-        if key not in RESUMABLE and key != "extra" and theirs.get(key) != ours[key]:
-            raise ConfigError(f"train.{key} is {ours[key]!r} but the run being resumed has {theirs.get(key)!r}; "
-                              "a resumed run keeps its own options (only train.threads and train.device may change).")
-    recorded = state["meta"]["backbone"]
-    if recorded["name"] != backbone.name or recorded["options"] != backbone.config_dict():
-        raise ConfigError(f"the backbone differs from the run being resumed ({recorded['name']} with "
-                          f"{recorded['options']}); a resumed run keeps its own backbone.")
-    if state["world"] != world:
-        raise ConfigError(f"the run was trained by {state['world']} process(es), this is {world}; resume it with "
-                          "as many (the order of the clouds is split between them).")
-    if state["train_clouds"] != n_train:
-        raise DataError(f"the dataset holds {n_train} training clouds, the run being resumed was trained on "
-                        f"{state['train_clouds']}; resume it on the same dataset.")
-
-
 def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: str | os.PathLike,
                      settings: TrainSettings | None = None, resume: bool = False) -> Path:
     """Train ``backbone`` + head on the shards in ``data_dir``; write the best checkpoint to ``run_dir``.
@@ -285,7 +181,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         versions=versions(), extra=dict(s.extra))
     twin_of = torch.as_tensor(checkpoint_meta.twin_index(), device=device)  # (C,)
     if state is not None:
-        _check_resumable(state, s, backbone, world, len(x_train))
+        check_resumable(state, asdict(s), backbone, world, len(x_train))
 
     model = Classifier(backbone, len(checkpoint_meta.classes), hidden=s.head_hidden, dropout=s.dropout).to(device)
     net = nn.parallel.DistributedDataParallel(model) if world > 1 else model
@@ -320,7 +216,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         if not epoch_done:
             perm, position, losses = state["perm"], state["position"], list(state["losses"])
         first = epoch + 1 if epoch_done else epoch
-        _set_rng_states(state["rng"], gen, device)  # last: building the model above drew from them
+        set_rng_states(state["rng"], gen, device)  # last: building the model above drew from them
         if world > 1:  # rank 0's dropout stream was saved; every rank starts a stream of its own
             torch.manual_seed(s.seed + 7919 * rank + step)
 
@@ -345,7 +241,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                    "losses": list(losses), "step": step, "elapsed": time.perf_counter() - started,
                    "history": history, "best": list(best), "saved": saved,
                    "model": {k: v.detach().cpu() for k, v in model.state_dict().items()},
-                   "optimizer": opt.state_dict(), "rng": _rng_states(gen, device),
+                   "optimizer": opt.state_dict(), "rng": rng_states(gen, device),
                    "settings": asdict(s), "meta": checkpoint_meta.to_dict(), "world": world, "train_clouds": len(x_train),
                    "data": os.path.abspath(data_dir)}
         with atomic_path(run_dir / RESUME) as tmp:
@@ -355,7 +251,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         return TrainingError(f"training diverged in epoch {epoch}, step {step + 1}: {what} "
                              f"(train.lr={s.lr:g}; expected a finite loss, lower train.lr); {kept()}.")
 
-    stops = _StopRequests().__enter__()  # left in the `finally` below
+    stops = StopRequests().__enter__()  # left in the `finally` below
     try:
         for epoch in range(first, s.epochs + 1):
             net.train()
@@ -466,3 +362,20 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     if world > 1:
         torch.distributed.barrier()
     return ckpt
+
+
+def resume_training(run_dir: str | os.PathLike, **changes) -> tuple[Path, TrainSettings]:
+    """Go on with the run in ``run_dir`` from its ``resume.pt``, with its own settings, backbone and dataset;
+    ``changes`` may give ``threads`` and ``device`` anew. Returns the checkpoint path and the settings."""
+    state = read_resume_state(run_dir)
+    unknown = sorted(set(changes) - set(RESUMABLE))
+    if unknown:
+        raise ConfigError(f"train.{unknown[0]} cannot change when a run is resumed (only train.threads and "
+                          "train.device can).")
+    settings = check_settings(TrainSettings(**{**state["settings"], **changes}))
+    set_threads(settings.threads)
+    seed_everything(settings.seed)
+    recorded = RunMeta.from_dict(state["meta"]).backbone
+    backbone = build_backbone(recorded.name, **recorded.options)
+    print(f"resuming {run_dir} at epoch {state['epoch'] + state['epoch_done']}, step {state['step']}", flush=True)
+    return train_classifier(backbone, state["data"], run_dir, settings, resume=True), settings

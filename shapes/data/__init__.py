@@ -23,6 +23,7 @@ from shapes.data._catalog import Catalog, Instance, read_catalog
 from shapes.data._clean import CleanSettings, Cleaned, clean_points, neighbour_spacing
 from shapes.data._load import CloudDataset, CloudSplit, collate_clouds, load_split, read_meta
 from shapes.data._normals import estimate_normals
+from shapes.data._prepare import Cloud, CloudRecipe, prepare_cloud
 from shapes.data._read import (
     MESH_SUFFIXES,
     MIN_SCAN_POINTS,
@@ -51,6 +52,9 @@ __all__ = [
     "read_mesh",
     "read_scan",
     "read_points",
+    "prepare_cloud",
+    "CloudRecipe",
+    "Cloud",
     "ScanFile",
     "check_spread",
     "orient_toward",

@@ -23,6 +23,7 @@ import trimesh
 from tqdm import tqdm
 
 import shapes
+from shapes import _checks as check
 from shapes._atomic import atomic_dir, write_json
 from shapes.errors import ConfigError, DataError
 from shapes.data._catalog import read_catalog
@@ -67,21 +68,15 @@ SURFACE, SCAN = 0, 1  # values of ``kind``
 _FORMAT = 1
 
 
-def _check_int(value, name: str, low: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-        raise ConfigError(f"{name} should be an integer >= {low}, got {value!r} instead.")
-    return int(value)
-
-
 def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals="mesh",
                     normals_k=NORMALS_K, normals_points=NORMALS_POINTS) -> dict:
-    points = _check_int(points, "points", 2)
-    oversample = _check_int(oversample, "oversample", 1)
-    seed = _check_int(seed, "seed", 0)
+    points = check.integer("points", points, low=2)
+    oversample = check.integer("oversample", oversample, low=1)
+    seed = check.integer("seed", seed, low=0)
     copies = dict(DEFAULT_COPIES if copies is None else copies)
     if set(copies) != set(SPLITS):
         raise ConfigError(f"copies should have keys {list(SPLITS)}, got {sorted(copies)} instead.")
-    copies = {s: _check_int(copies[s], f"copies[{s!r}]", 0) for s in SPLITS}
+    copies = {s: check.integer(f"copies[{s!r}]", copies[s], low=0) for s in SPLITS}
     if mode not in MODES:
         raise ConfigError(f"mode should be one of {list(MODES)}, got {mode!r} instead.")
     for name, value in (("scan_fraction", scan_fraction), ("noise", noise)):
@@ -91,10 +86,10 @@ def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed
         raise ConfigError(f"scan_fraction should be in [0, 1], got {scan_fraction!r} instead.")
     if normals not in NORMAL_SOURCES:
         raise ConfigError(f"normals should be one of {list(NORMAL_SOURCES)}, got {normals!r} instead.")
-    normals_k = _check_int(normals_k, "normals_k", 3)
+    normals_k = check.integer("normals_k", normals_k, low=3)
     if normals == "estimated" and normals_k >= points:
         raise ConfigError(f"normals_k should be below points = {points}, got {normals_k} instead.")
-    normals_points = _check_int(normals_points, "normals_points", points)
+    normals_points = check.integer("normals_points", normals_points, low=points)
     return dict(points=points, copies=copies, mode=mode, scan_fraction=float(scan_fraction),
                 oversample=oversample, noise=float(noise), seed=seed, normals=normals, normals_k=normals_k,
                 normals_points=normals_points)
