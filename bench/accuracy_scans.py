@@ -24,7 +24,7 @@ import numpy as np
 import torch
 
 from shapes.data import read_mesh, read_meta, scan_view
-from shapes.evaluate import find_checkpoint
+from shapes.run import find_checkpoint
 from shapes.geometry import random_improper, uniform_rotations
 from shapes.predict import predict_files
 from shapes.seeding import rng, torch_generator
