@@ -60,6 +60,12 @@ NORMALS_K = 16
 # helical gear 5.6 / 0.0 / 0.0 deg; a spring 39.8 / 17.4 / 12.5 deg, and at 512 and 1024 points the
 # single-view signs of the spring came out reversed (which mimics its mirror twin).
 NORMALS_POINTS = 8192
+# The sparsest training scan has NORMALS_POINTS / SPARSEST returns (never fewer than the cloud's
+# surface draw): scanners differ in resolution by more than an order of magnitude, and a model
+# trained only on scans of 2048 returns or more, whose normals lean with the helix, lost the hand
+# of studs and brackets on scan files of 1000 points (a demo run: 79.7% at 3000 points, 59.4% at
+# 1000, handed 71.9% -> 37.5%; bench/accuracy_scans.py --points).
+SPARSEST = 16
 META_FILE = "meta.json"
 SHARD_KEYS = ("points", "normals", "labels", "instance", "scale")
 # Keys added later; shards written before them load with the defaults below.
@@ -188,8 +194,8 @@ def draw_cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, 
     depth noise to scans and moves surface points along the normal.
 
     A scan has ``points * oversample`` returns with mesh normals. With ``s["normals"] ==
-    "estimated"`` it has instead a number of returns drawn log-uniformly between a quarter of
-    ``s["normals_points"]`` and all of it (scanners differ in resolution), and its normals are
+    "estimated"`` it has instead a number of returns drawn log-uniformly between
+    ``s["normals_points"] / SPARSEST`` (at least ``points * oversample``) and all of it (scanners differ in resolution), and its normals are
     estimated on those returns before thinning (:func:`dense_normals`, single-view signs), exactly
     as for a bare scan file at prediction time; a full surface keeps the mesh's normals.
 
@@ -207,7 +213,7 @@ def draw_cloud(mesh, scan: bool, s: dict, gen) -> tuple[np.ndarray, np.ndarray, 
     if scan:
         if estimated:
             top = max(int(s.get("normals_points", NORMALS_POINTS)), many)
-            many = int(round(math.exp(gen.uniform(math.log(max(top // 4, many)), math.log(top)))))
+            many = int(round(math.exp(gen.uniform(math.log(max(top // SPARSEST, many)), math.log(top)))))
         result = scan_part(mesh, max(many, n + n // 4), training_scanner(gen, s["noise"]), seed=gen)
         pts, nrm, visible = result.points, result.normals, float(result.visible_share)
         kept = clean_points(pts, _CLEAN, seed=gen).keep
@@ -380,8 +386,8 @@ def build_dataset(
             "normals": {"source": s["normals"], "k": s["normals_k"],
                         **({"applies_to": "virtual scans (full surfaces keep the mesh's)", "method": "pca",
                             "orientation": "single-view", "points": s["normals_points"],
-                            "estimated_on": "the scan's returns before thinning, a quarter of 'points' to "
-                                            "all of it (log-uniform per scan)"}
+                            "estimated_on": f"the scan's returns before thinning, 1/{SPARSEST} of 'points' "
+                                            "(at least points x oversample) to all of it (log-uniform per scan)"}
                            if s["normals"] == "estimated" else {})},
             "split_fractions": [float(f) for f in split_fractions],
             "normalise": "centroid to origin, unit RMS radius; scale (catalog units) stored per cloud",
