@@ -1,4 +1,4 @@
-"""The backbone contract and the shared invariant head.
+"""The backbone contract, its input checks and the shared invariant head.
 
 A backbone maps a padded batch of clouds to invariant features::
 
@@ -10,7 +10,7 @@ True also takes ``normals=`` (B, N, 3): unit outward surface normals, which turn
 show, such as the tilt of a thread flank or of a helical tooth. A backbone declares ``symmetry``:
 ``"E3"`` (invariant to rotations, reflections, translations), ``"SE3"`` (rotations and
 translations only: it can tell a part from its mirror image) or ``"none"``. Backbones never read
-files and never import Hydra.
+files and never import Hydra. (docs/design.md, "Backbone contract".)
 """
 
 from __future__ import annotations
@@ -22,36 +22,61 @@ import torch
 from torch import nn
 
 from shapes.errors import ConfigError, InputError
-from shapes.geometry import SmoothNeighbours, knn_graph, radius_graph, smooth_graph
 
-__all__ = ["Backbone", "Classifier", "check_points", "check_normals", "masked_mean", "masked_max", "neighbourhood",
-           "check_flag"]
+__all__ = ["Backbone", "Classifier", "check_points", "check_normals", "masked_mean", "masked_max", "RENAMED"]
 
 SYMMETRIES = ("E3", "SE3", "none")
+# Options that were renamed: old name -> what to write instead (one line, for the user).
+RENAMED = {
+    "handedness": "symmetry (se3 | e3; handedness: true is symmetry: se3, false is e3)",
+    "parity": "symmetry (se3 | e3; parity: full is symmetry: se3, even is e3)",
+}
 
 
-def check_points(points: torch.Tensor, mask: torch.Tensor | None) -> torch.Tensor:
-    """Validate a batch at the boundary; return a bool mask (all True when none was given)."""
+def _shape(x) -> str:
+    return str(tuple(x.shape)) if isinstance(x, torch.Tensor) else type(x).__name__
+
+
+def check_points(points: torch.Tensor, mask: torch.Tensor | None, dtype: torch.dtype | None = None,
+                 min_points: int = 1, why: str = "") -> torch.Tensor:
+    """Validate a batch at the boundary; return a bool mask (all True when none was given).
+
+    Points must be ``(B, N, 3)``, of a floating dtype (``dtype``, the backbone's, when given) and
+    finite at the real points (padding may hold anything); every cloud needs ``min_points`` real
+    points (``why`` says what for). Each failure is one :class:`InputError` line.
+    """
     if not isinstance(points, torch.Tensor) or points.dim() != 3 or points.shape[-1] != 3:
-        shape = tuple(points.shape) if isinstance(points, torch.Tensor) else type(points).__name__
-        raise InputError(f"points should have shape (B, N, 3), got {shape} instead.")
+        raise InputError(f"points should have shape (B, N, 3), got {_shape(points)} instead.")
+    if not points.is_floating_point() or (dtype is not None and points.dtype != dtype):
+        expected = f"{dtype} like the backbone's weights" if dtype is not None else "a floating dtype"
+        raise InputError(f"points should be {expected}, got {points.dtype} instead (convert one to the other).")
     if mask is None:
-        return torch.ones(points.shape[:2], dtype=torch.bool, device=points.device)
-    if mask.shape != points.shape[:2]:
-        raise InputError(
-            f"mask should have shape (B, N) = {tuple(points.shape[:2])}, got {tuple(mask.shape)} instead."
-        )
-    return mask.to(torch.bool)
+        mask = torch.ones(points.shape[:2], dtype=torch.bool, device=points.device)
+    elif not isinstance(mask, torch.Tensor) or mask.shape != points.shape[:2]:
+        raise InputError(f"mask should have shape (B, N) = {tuple(points.shape[:2])}, got {_shape(mask)} instead.")
+    elif mask.is_floating_point() or mask.is_complex():
+        raise InputError(f"mask should be bool (True at real points), got {mask.dtype} instead.")
+    mask = mask.to(torch.bool)
+    if not bool(torch.isfinite(points[mask]).all()):
+        raise InputError("points should be finite at the real points (mask True), got NaN or inf instead.")
+    fewest = int(mask.sum(1).min()) if mask.numel() else 0
+    if fewest < min_points:
+        raise InputError(f"{why or 'the backbone'} needs clouds of at least {min_points} points, got {fewest}.")
+    return mask
 
 
-def check_normals(normals: torch.Tensor | None, points: torch.Tensor) -> torch.Tensor:
-    """Validate normals for a backbone that needs them; same shape and dtype as ``points``."""
+def check_normals(normals: torch.Tensor | None, points: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
+    """Validate normals for a backbone that needs them: the points' shape, a floating dtype (cast to
+    the points'), finite at the real points."""
     if normals is None:
         raise InputError("this backbone was built with normals: true and needs normals (B, N, 3) "
                          "beside the points; got none (retrain with normals: false for bare points).")
     if not isinstance(normals, torch.Tensor) or normals.shape != points.shape:
-        shape = tuple(normals.shape) if isinstance(normals, torch.Tensor) else type(normals).__name__
-        raise InputError(f"normals should have the points' shape {tuple(points.shape)}, got {shape} instead.")
+        raise InputError(f"normals should have the points' shape {tuple(points.shape)}, got {_shape(normals)} instead.")
+    if not normals.is_floating_point():
+        raise InputError(f"normals should be a floating dtype, got {normals.dtype} instead.")
+    if not bool(torch.isfinite(normals[mask]).all()):
+        raise InputError("normals should be finite at the real points (mask True), got NaN or inf instead.")
     return normals.to(points.dtype)
 
 
@@ -67,36 +92,12 @@ def masked_max(x: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
     return x.masked_fill(~m, torch.finfo(x.dtype).min).amax(1)
 
 
-def masked_centroid(points: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
-    """Centroid (B, 1, 3) of the real points; subtracting it makes any backbone translation invariant."""
-    return masked_mean(points, mask).unsqueeze(1)
-
-
-def neighbourhood(points: torch.Tensor, k: int, mask: torch.Tensor, radius: float | None,
-                  smooth: bool) -> SmoothNeighbours:
-    """The neighbour graph every backbone aggregates over, with a weight per edge.
-
-    ``smooth=True``: :func:`shapes.geometry.smooth_graph`, the ``k`` nearest senders tapered to
-    weight 0 at the ``(k+1)``-th one's distance (and at ``radius``), so the weighted neighbourhood is
-    continuous in the points and blind to how tied distances were ordered. ``smooth=False``: the
-    plain kNN (or radius) graph with weight 1 on every valid slot, as before the option existed
-    (``scale`` is then NaN: there is none).
-    """
-    if smooth:
-        return smooth_graph(points, k, mask=mask, radius=radius)
-    nb = knn_graph(points, k, mask=mask) if radius is None else radius_graph(points, radius, k, mask=mask)
-    scale = points.new_full(points.shape[:2], float("nan"))
-    return SmoothNeighbours(nb.index, nb.valid, nb.valid.to(points.dtype), scale)
-
-
-def check_flag(value, backbone: str, option: str) -> None:
-    """ConfigError unless ``value`` is a bool (YAML ``true``/``false``), naming what was found."""
-    if not isinstance(value, bool):
-        raise ConfigError(f"{backbone} option '{option}' should be true or false, got {value!r}.")
-
-
 class Backbone(nn.Module):
-    """Base of every backbone: holds its config dataclass and declares its symmetry."""
+    """Base of every backbone: holds its config dataclass and declares its symmetry.
+
+    A subclass validates its options in its ``Config.__post_init__`` (with :mod:`shapes._checks`), so a
+    bad option fails when the backbone is built, before any work.
+    """
 
     name: ClassVar[str] = ""
     Config: ClassVar[type] = object
@@ -104,6 +105,9 @@ class Backbone(nn.Module):
     def __init__(self, **kwargs):
         super().__init__()
         fields = {f.name for f in dataclasses.fields(self.Config)}
+        for old in sorted(set(kwargs) - fields):
+            if old in RENAMED:
+                raise ConfigError(f"backbone option '{old}' is now {RENAMED[old]}.")
         unknown = sorted(set(kwargs) - fields)
         if unknown:
             raise ConfigError(
@@ -113,6 +117,20 @@ class Backbone(nn.Module):
         self.symmetry = "none"
         self.out_features = 0
         self.uses_normals = False  # True: forward takes normals= as well
+
+    @property
+    def min_points(self) -> int:
+        """Real points every cloud needs (a kNN backbone: ``k + 1``)."""
+        k, radius = getattr(self.config, "k", None), getattr(self.config, "radius", None)
+        return k + 1 if k is not None and radius is None else 1
+
+    def check_inputs(self, points, mask, normals=None):
+        """The contract's checks: ``(mask, normals)`` validated (normals None unless the backbone takes them)."""
+        weight = next(self.parameters(), None)
+        k = getattr(self.config, "k", None)
+        why = f"k = {k} neighbours" if self.min_points > 1 else ""
+        mask = check_points(points, mask, None if weight is None else weight.dtype, self.min_points, why)
+        return mask, (check_normals(normals, points, mask) if self.uses_normals else None)
 
     def config_dict(self) -> dict:
         """Plain-python options that rebuild this backbone: ``type(self)(**config_dict())``."""

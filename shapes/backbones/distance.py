@@ -13,17 +13,11 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
-from shapes.backbones._base import (
-    Backbone,
-    check_flag,
-    check_points,
-    masked_centroid,
-    masked_max,
-    masked_mean,
-    neighbourhood,
-)
+from shapes._checks import boolean, integer, number
+from shapes.backbones._base import Backbone, masked_max, masked_mean
+from shapes.backbones._neighbours import Cloud, edges
 from shapes.backbones._radial import GaussianBasis, cosine_cutoff
-from shapes.errors import ConfigError, InputError
+from shapes.backbones._vectors import norm
 from shapes.geometry import gather_neighbours
 
 __all__ = ["DistanceBackbone", "DistanceConfig"]
@@ -39,6 +33,12 @@ class DistanceConfig:
     centroid_radial: int = 16  # Gaussians of the distance to the centroid, the initial per-point feature
     smooth_neighbours: bool = True  # taper the k neighbours to weight 0 at the (k+1)-th one's distance: on a
     # scan's lattice many neighbours tie, and a hard kNN set made the features depend on rounding (False: old graph)
+
+    def __post_init__(self):
+        for name in ("hidden", "layers", "k", "num_radial", "centroid_radial"):
+            setattr(self, name, integer(f"backbone.{name}", getattr(self, name), low=1))
+        self.cutoff = number("backbone.cutoff", self.cutoff, low=0, low_open=True)
+        boolean("backbone.smooth_neighbours", self.smooth_neighbours)
 
 
 class Interaction(nn.Module):
@@ -77,12 +77,6 @@ class DistanceBackbone(Backbone):
     def __init__(self, **kwargs):
         super().__init__(**kwargs)
         c = self.config
-        for field in ("hidden", "layers", "k", "num_radial", "centroid_radial"):
-            if getattr(c, field) < 1:
-                raise ConfigError(f"distance needs {field} >= 1, got {getattr(c, field)}.")
-        if not c.cutoff > 0:
-            raise ConfigError(f"distance needs cutoff > 0, got {c.cutoff}.")
-        check_flag(c.smooth_neighbours, "distance", "smooth_neighbours")
         self.rbf = GaussianBasis(c.num_radial, c.cutoff)
         self.centroid_rbf = GaussianBasis(c.centroid_radial, 3.0)  # normalised parts lie within ~3 RMS radii
         self.embed = nn.Sequential(nn.Linear(c.centroid_radial, c.hidden), nn.SiLU(), nn.Linear(c.hidden, c.hidden))
@@ -92,18 +86,12 @@ class DistanceBackbone(Backbone):
         self.out_features = 2 * c.hidden
 
     def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
-        mask = check_points(points, mask)
         c = self.config
-        smallest = int(mask.sum(1).min())
-        if c.k >= smallest:
-            raise InputError(f"k = {c.k} neighbours needs clouds of at least {c.k + 1} points, got {smallest}.")
-        nb = neighbourhood(points, c.k, mask, None, c.smooth_neighbours)
-        rel = gather_neighbours(points, nb.index) - points.unsqueeze(2)  # (B, N, k, 3)
-        d = rel.square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N, k)
-        weight = cosine_cutoff(d, c.cutoff) * nb.weight  # (B, N, k): cutoff x taper (x valid)
-        radial = self.radial(self.rbf(d))  # (B, N, k, H), computed once for all blocks
-        r0 = (points - masked_centroid(points, mask)).square().sum(-1).clamp_min(1e-12).sqrt()  # (B, N)
-        h = self.embed(self.centroid_rbf(r0))  # (B, N, H)
+        cloud = Cloud.of(self, points, mask)
+        graph = edges(cloud, c.k, None, c.smooth_neighbours)
+        weight = cosine_cutoff(graph.length, c.cutoff) * graph.taper  # (B, N, k): cutoff x taper (x valid)
+        radial = self.radial(self.rbf(graph.length))  # (B, N, k, H), computed once for all blocks
+        h = self.embed(self.centroid_rbf(norm(cloud.points)))  # (B, N, H) from the distance to the centroid
         for block in self.blocks:
-            h = block(h, nb.index, radial, weight)
-        return torch.cat([masked_max(h, mask), masked_mean(h, mask)], dim=-1)  # (B, 2H)
+            h = block(h, graph.index, radial, weight)
+        return torch.cat([masked_max(h, cloud.mask), masked_mean(h, cloud.mask)], dim=-1)  # (B, 2H)

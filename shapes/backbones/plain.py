@@ -12,8 +12,9 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
-from shapes.backbones._base import Backbone, check_points, masked_centroid, masked_max, masked_mean
-from shapes.errors import ConfigError
+from shapes._checks import integer
+from shapes.backbones._base import Backbone, masked_max, masked_mean
+from shapes.backbones._neighbours import Cloud
 
 __all__ = ["PlainBackbone", "PlainConfig"]
 
@@ -22,6 +23,10 @@ __all__ = ["PlainBackbone", "PlainConfig"]
 class PlainConfig:
     hidden: int = 128  # width of the per-point MLP; wide enough to fit 14 classes in aligned poses
     layers: int = 3  # depth of the per-point MLP; more adds cost but little accuracy on rigid parts
+
+    def __post_init__(self):
+        self.hidden = integer("backbone.hidden", self.hidden, low=1)
+        self.layers = integer("backbone.layers", self.layers, low=1)
 
 
 class PlainBackbone(Backbone):
@@ -37,8 +42,6 @@ class PlainBackbone(Backbone):
     def __init__(self, **kwargs):
         super().__init__(**kwargs)
         c = self.config
-        if c.hidden < 1 or c.layers < 1:
-            raise ConfigError(f"plain needs hidden >= 1 and layers >= 1, got hidden={c.hidden}, layers={c.layers}.")
         widths = [3] + [c.hidden] * c.layers
         blocks = []
         for a, b in zip(widths[:-1], widths[1:]):
@@ -48,6 +51,6 @@ class PlainBackbone(Backbone):
         self.out_features = 2 * c.hidden
 
     def forward(self, points: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
-        mask = check_points(points, mask)
-        x = self.mlp(points - masked_centroid(points, mask))  # (B, N, hidden)
-        return torch.cat([masked_max(x, mask), masked_mean(x, mask)], dim=-1)  # (B, 2*hidden)
+        cloud = Cloud.of(self, points, mask)  # centred on the real points: translation invariant
+        x = self.mlp(cloud.points)  # (B, N, hidden)
+        return torch.cat([masked_max(x, cloud.mask), masked_mean(x, cloud.mask)], dim=-1)  # (B, 2*hidden)
