@@ -41,13 +41,13 @@ from shapes.geometry import uniform_rotations  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 OUT = ROOT / "bench" / "results" / "neighbourhood.json"
 NAMES = ["distance", "vector_gate", "harmonic_attention"]
-SMALL = {  # the table of tests/test_backbones.py
+SMALL = {  # the table of tests/test_backbones.py, on bare points (the lattices carry no normals)
     "distance": {"hidden": 16, "layers": 2, "k": 8},
-    "vector_gate": {"scalars": 16, "vectors": 8, "layers": 2, "k": 8},
-    "vector_gate_e3": {"scalars": 16, "vectors": 8, "layers": 2, "k": 8, "handedness": False},
-    "harmonic_attention": {"l_max": 1, "channels": {0: 8, 1: 4}, "layers": 2, "k": 8, "heads": 2},
-    "harmonic_attention_even": {"l_max": 1, "channels": {0: 8, 1: 4}, "layers": 2, "k": 8, "heads": 2,
-                                "parity": "even"},
+    "vector_gate": {"scalars": 16, "vectors": 8, "layers": 2, "k": 8, "normals": False},
+    "vector_gate_e3": {"scalars": 16, "vectors": 8, "layers": 2, "k": 8, "normals": False, "symmetry": "e3"},
+    "harmonic_attention": {"l_max": 1, "channels": {0: 8, 1: 4}, "layers": 2, "k": 8, "heads": 2, "normals": False},
+    "harmonic_attention_e3": {"l_max": 1, "channels": {0: 8, 1: 4}, "layers": 2, "k": 8, "heads": 2,
+                              "normals": False, "symmetry": "e3"},
 }
 
 
@@ -88,7 +88,7 @@ CLOUDS = {"box": box_lattice, "cylinder": cylinder_lattice, "helix": helix_latti
 
 def build(name: str, options: dict, smooth: bool, dtype) -> torch.nn.Module:
     torch.manual_seed(0)
-    base = name.split("_e3")[0].split("_even")[0]
+    base = name.split("_e3")[0]
     return build_backbone(base, **{**options, "smooth_neighbours": smooth}).to(dtype).eval()
 
 

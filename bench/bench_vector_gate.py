@@ -8,7 +8,7 @@ Widths are stated in the JSON as floats carried per point, so "comparable width"
 
 - vector_gate: ``scalars`` + 3 ``vectors`` + (handed) ``vectors`` pseudo-scalars + 3 ``vectors``,
   at its default width and at a width (``vectors: 16``) above the harmonic one;
-- harmonic_attention: sum over degrees ``l`` of ``channels[l] (2l + 1)``, twice with parity "full".
+- harmonic_attention: sum over degrees ``l`` of ``channels[l] (2l + 1)``, twice with symmetry se3.
 
 Writes ``bench/results/vector_gate.json``.
 
@@ -41,10 +41,12 @@ OUT = Path(__file__).resolve().parent / "results" / "vector_gate.json"
 # Both backbones at their shipped widths (conf/backbone/*.yaml) and vector_gate also at a width
 # at least the harmonic one's, so that "comparable width" holds either way round.
 CASES = {
-    "vector_gate": ("vector_gate", {"scalars": 32, "vectors": 8, "layers": 3, "handedness": True}),  # layers as harmonic
-    "vector_gate_wide": ("vector_gate", {"scalars": 32, "vectors": 16, "layers": 3, "handedness": True}),
+    "vector_gate": ("vector_gate", {"scalars": 32, "vectors": 8, "layers": 3, "symmetry": "se3",
+                                    "normals": False}),  # layers as harmonic
+    "vector_gate_wide": ("vector_gate", {"scalars": 32, "vectors": 16, "layers": 3, "symmetry": "se3",
+                                         "normals": False}),
     "harmonic_attention": ("harmonic_attention", {"l_max": 2, "channels": {0: 16, 1: 8, 2: 4}, "layers": 3,
-                                                  "parity": "full"}),
+                                                  "symmetry": "se3", "normals": False}),
 }
 
 
@@ -52,9 +54,9 @@ def per_point_width(name: str, options: dict) -> int:
     """Floats carried per point between layers."""
     if name == "vector_gate":
         S, V = options["scalars"], options["vectors"]
-        return S + 3 * V + ((V + 3 * V) if options.get("handedness", True) else 0)
+        return S + 3 * V + ((V + 3 * V) if options.get("symmetry", "se3") == "se3" else 0)
     width = sum(c * (2 * int(l) + 1) for l, c in options["channels"].items())
-    return width * (2 if options.get("parity", "full") == "full" else 1)
+    return width * (2 if options.get("symmetry", "se3") == "se3" else 1)
 
 
 def machine() -> dict:

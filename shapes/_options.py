@@ -201,6 +201,15 @@ def check_options(verb: str, cfg: dict, defaults: dict | None = None) -> None:
             _like_default(name, value, default)
 
 
+def _refuse_renamed(key: str) -> None:
+    """One line naming the new option for a renamed backbone option (``backbone.handedness=...``)."""
+    from shapes.backbones import RENAMED
+
+    group, _, option = key.lstrip("+~").partition(".")
+    if group == "backbone" and option in RENAMED:
+        raise ConfigError(f"backbone.{option} is now backbone.{RENAMED[option]}.")
+
+
 def check_overrides(overrides: list[str], multirun: bool, verb: str, *, compose, groups: dict) -> None:
     """Compose the config (``compose(overrides)``) once per swept value and check the options ``verb``
     reads (:func:`check_options`), so a bad option fails before any work starts. ``groups``: the config
@@ -224,6 +233,7 @@ def check_overrides(overrides: list[str], multirun: bool, verb: str, *, compose,
                     raise ConfigError(f"unknown {key} '{v}'; choose one of: {', '.join(groups[key])}.")
         if key.startswith("hydra"):
             continue
+        _refuse_renamed(key)
         variants = [prev + [f"{key}={v}"] for prev in variants for v in values]
     defaults = None
     for variant in variants[:64]:

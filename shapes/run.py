@@ -25,7 +25,7 @@ import numpy as np
 import torch
 
 from shapes._atomic import atomic_path, write_json
-from shapes.backbones import Classifier, build_backbone
+from shapes.backbones import Classifier, build_backbone, stored_options
 from shapes.errors import ConfigError, DataError
 
 __all__ = ["CHECKPOINT", "RESUME", "HISTORY", "METRICS", "TIMING", "CLOCKED", "BackboneRecord", "HeadRecord",
@@ -222,9 +222,7 @@ def load_classifier(run: str | os.PathLike, device: str | torch.device = "cpu") 
 
             model = D2Network.from_state(payload["state_dict"], meta.baseline, len(meta.classes), path)
             return model.to(device).eval(), meta
-        options = dict(meta.backbone.options)
-        if meta.backbone.name in ("vector_gate", "harmonic_attention") and "signed_normals" not in options:
-            options["signed_normals"] = True  # runs from before the option read the normals' signs
+        options = stored_options(meta.backbone.name, meta.backbone.options)  # in today's names
         model = Classifier(build_backbone(meta.backbone.name, **options), len(meta.classes),
                            **dataclasses.asdict(meta.head))
         fit = model.load_state_dict(payload["state_dict"], strict=False)

@@ -18,11 +18,12 @@ from scipy.spatial import cKDTree
 from shapes.backbones import build_backbone
 from shapes.errors import ConfigError
 from shapes.geometry import neighbour_taper, random_improper, uniform_rotations, smooth_graph
+from conftest import rel_change
 from test_backbones import CASES  # the table of backbone cases (tests/ is on the path under pytest)
 
-EQUIVARIANT = [c for c in CASES if c[2] != "none"]
-EQ_IDS = [f"{n}-{s}-{'-'.join(f'{k}={v}' for k, v in o.items() if k in ('handedness', 'parity'))}"
-          for n, o, s in EQUIVARIANT]
+# on bare points (the lattices carry no normals, except where a test gives closed-form ones), once per symmetry
+EQUIVARIANT = list({(c.name, c.symmetry): (c.name, c.bare, c.symmetry) for c in CASES if c.symmetry != "none"}.values())
+EQ_IDS = [f"{n}-{s}" for n, _, s in EQUIVARIANT]
 K = 8  # the table's k: every equivariant case uses k = 8
 assert all(o["k"] == K for _, o, _ in EQUIVARIANT)
 
@@ -86,11 +87,6 @@ def make(name, options, **extra):
     return build_backbone(name, **{**options, **extra}).to(torch.float64).eval()
 
 
-def rel_change(a, b):
-    a, b = a.detach(), b.detach()
-    return float((a - b).abs().max() / a.abs().max().clamp_min(1e-30))
-
-
 def moved(points, n=50, seed=1):
     """``n`` copies of ``points`` rotated by Haar rotations and translated, with the rotations."""
     R = uniform_rotations(n, generator=torch.Generator().manual_seed(seed), dtype=torch.float64)
@@ -151,7 +147,7 @@ def test_grid_features_with_normals_unchanged_by_rotations(name, extra, cloud, n
 def test_plain_on_grids_sees_translations_not_rotations(cloud):
     # closed form: a per-point MLP of centred coordinates, f(x + t) = f(x) but f(R x) != f(x) in general
     # (it has no neighbourhoods, so nothing to taper and no option)
-    name, options, _ = next(c for c in CASES if c[0] == "plain")
+    name, options = next((c.name, c.options) for c in CASES if c.name == "plain")
     net = make(name, options)
     x = CLOUDS[cloud]()
     shift = torch.tensor([[[0.7, -1.3, 2.1]]], dtype=torch.float64)

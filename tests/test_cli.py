@@ -39,8 +39,12 @@ def test_verb_help(capsys):
     (["frob"], "unknown verb 'frob'"),
     (["train", "backbone=distance,plain"], "add -m"),
     (["eval", "-m"], "-m (sweeps) is for 'shapes train'"),
-    (["train", "backbone=harmonic_attention", "backbone.l_max=5"], "l_max should be in 0..3, got 5."),
-    (["train", "backbone=harmonic_attention", "backbone.edge_block=0"], "edge_block should be an integer >= 1, got 0."),
+    (["train", "backbone=harmonic_attention", "backbone.l_max=5"], "backbone.l_max should be an integer in [0, 3], got 5"),
+    (["train", "backbone=harmonic_attention", "backbone.edge_block=0"],
+     "backbone.edge_block should be an integer >= 1, got 0"),
+    (["train", "backbone=vector_gate", "backbone.handedness=false"], "backbone.handedness is now backbone.symmetry (se3"),
+    (["train", "backbone=harmonic_attention", "+backbone.parity=even"], "backbone.parity is now backbone.symmetry (se3"),
+    (["train", "backbone=vector_gate", "backbone.symmetry=mirror"], "backbone.symmetry should be one of se3, e3"),
 ])
 def test_bad_options_give_one_line(argv, needle, capsys):
     assert main(argv) == 2
@@ -55,7 +59,7 @@ def test_bad_values_give_one_line(tmp_path, monkeypatch, capsys):
 
 @pytest.mark.parametrize("argv,needle", [
     (["train", "data=nowhere"], "meta.json"),
-    (["train", "backbone=harmonic_attention", "backbone.k=0"], "k should be an integer >= 1, got 0."),
+    (["train", "backbone=harmonic_attention", "backbone.k=0"], "backbone.k should be an integer >= 1, got 0"),
 ], ids=["missing-dataset", "bad-backbone-option"])
 def test_a_failed_training_leaves_no_run_folder(argv, needle, tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)

@@ -1,50 +1,32 @@
-"""Harmonic-filter attention: invariance and per-layer equivariance, parity in both directions,
-fast path against the dense reference, masks, numerics and option validation."""
+"""What is special about harmonic-filter attention: degree 3 and the coupling paths, mirror twins on a
+helix and on a thread's normals, the fast path against the dense reference, blocks of receivers,
+the reach of the context, the normal inputs against numpy, and its option checks.
+
+(The generic table-driven checks over all backbones live in test_backbones.py.)"""
 
 import math
-from pathlib import Path
 
 import pytest
 import torch
+from conftest import random_cloud, random_normals, rotate, transform_features
+from conftest import rel_change as rel
 
-from shapes.backbones._equivariant import (
-    GlobalVectorReadout,
-    angular_pairs,
-    layer_paths,
-    masked_softmax,
-    proper_parity,
-)
+from shapes.backbones._features import proper_parity
+from shapes.backbones._harmonic_layer import angular_pairs, layer_paths
+from shapes.backbones._neighbours import Cloud, edges
+from shapes.backbones._normals import normal_inputs
 from shapes.backbones.harmonic_attention import HarmonicAttentionBackbone
-from shapes.errors import ConfigError, InputError
-from shapes.geometry import random_improper, uniform_rotations, reflection, wigner_d
+from shapes.errors import ConfigError
+from shapes.geometry import random_improper, reflection, uniform_rotations
 
-SMALL = {"k": 8}  # default channels and layers, small neighbourhoods: the shipped architecture, cheaply
+SMALL = {"k": 8, "normals": False}  # default channels and layers (the shipped architecture), on bare points
+NORMALS = {"k": 8, "normals": True}
+L2 = {"l_max": 2, "channels": {0: 8, 1: 4, 2: 2}}
 
 
 def make(dtype=torch.float64, seed=0, **options):
     torch.manual_seed(seed)
     return HarmonicAttentionBackbone(**{**SMALL, **options}).to(dtype).eval()
-
-
-def rotate(points, R):
-    return points @ R.transpose(-1, -2)  # convention: docs/design.md, "Rotations": x' = R x
-
-
-def rel(a, b):
-    a, b = a.detach(), b.detach()
-    return float((a - b).abs().max() / a.abs().max().clamp_min(1e-30))
-
-
-def random_cloud(b=1, n=64, seed=7, dtype=torch.float64):
-    return torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
-
-
-NORMALS = {"k": 8, "normals": True}
-
-
-def random_normals(b=1, n=64, seed=17, dtype=torch.float64):
-    v = torch.randn(b, n, 3, generator=torch.Generator().manual_seed(seed), dtype=dtype)
-    return v / v.norm(dim=-1, keepdim=True)
 
 
 def helix_cloud(n=64, dtype=torch.float64):
@@ -62,47 +44,43 @@ def helix_cloud(n=64, dtype=torch.float64):
     return torch.cat([helix, lump])[None]
 
 
-def transform_features(features: dict, Q: torch.Tensor) -> dict:
-    """Expected features after the orthogonal map ``Q (B, 3, 3)``: type (l, p) goes to ``s_p D_l(R) x``.
 
-    ``R = Q`` and ``s = 1`` for a rotation; ``R = -Q`` and ``s = p`` for an improper map (docs/design.md,
-    "Wigner-D" and "Parity and handedness": Y_l(R v) = D_l(R) Y_l(v), and inversion multiplies a parity-p
-    feature by p).
+def threaded_cloud(n=96, depth=0.5, pitch=1.0, dtype=torch.float64):
+    """Points on the cylinder r = 1, |z| <= 2, with the outward normals of a right-hand thread
+    ``r = 1 + e sin(2 pi z / p - theta)`` whose flanks are finer than the point spacing.
+
+    The point set is mirror-symmetric (every point has its image under x -> -x), so only the
+    normals carry the hand. Normal of ``r(theta, z)``: ``e_r - (1/r) dr/dtheta e_theta - dr/dz e_z``
+    (closed form for a surface of revolution perturbed in r), evaluated with ``depth = e (2 pi / p)``.
     """
-    improper = torch.det(Q) < 0  # (B,)
-    R = torch.where(improper[:, None, None], -Q, Q)
-    out = {}
-    for (l, p), x in features.items():
-        D = wigner_d(l, R)  # (B, 2l+1, 2l+1)
-        sign = torch.where(improper, float(p), 1.0).to(x.dtype)[:, None, None, None]
-        out[(l, p)] = sign * torch.einsum("bnci,bji->bncj", x, D)  # (B, N, C, 2l+1)
-    return out
+    g = torch.Generator().manual_seed(21)
+    theta = 2 * math.pi * torch.rand(n // 2, generator=g, dtype=dtype)
+    z = 4 * torch.rand(n // 2, generator=g, dtype=dtype) - 2
+    theta = torch.cat([theta, math.pi - theta])  # (x, y) -> (-x, y): theta -> pi - theta
+    z = torch.cat([z, z])
+    points = torch.stack([torch.cos(theta), torch.sin(theta), z], -1)
+    phase = torch.cos(2 * math.pi * z / pitch - theta)
+    e_r = torch.stack([torch.cos(theta), torch.sin(theta), 0 * z], -1)
+    e_t = torch.stack([-torch.sin(theta), torch.cos(theta), 0 * z], -1)
+    e_z = torch.stack([0 * z, 0 * z, 1 + 0 * z], -1)
+    e = depth * pitch / (2 * math.pi)
+    normal = e_r + e * phase[:, None] * e_t - depth * phase[:, None] * e_z
+    return points[None], (normal / normal.norm(dim=-1, keepdim=True))[None]
 
 
-# -- invariance and equivariance --------------------------------------------------------------
+def turn(points, normals, Q):
+    # closed form: an outward normal is a polar vector, n -> Q n (reflections included)
+    return rotate(points, Q), rotate(normals, Q)
 
 
-@pytest.mark.parametrize("dtype,tol", [(torch.float64, 1e-9), (torch.float32, 1e-4)])
-def test_features_invariant_under_50_rotations_and_translations(dtype, tol):
-    # claim: docs/design.md, "Backbone contract" and "Translations"; Haar rotations from shapes.geometry (KS-tested there)
-    net = make(dtype)
-    cloud = random_cloud(dtype=dtype)
-    R = uniform_rotations(50, generator=torch.Generator().manual_seed(1), dtype=dtype)
-    shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=dtype) * 5
-    moved = rotate(cloud.expand(50, -1, -1), R) + shift
-    base = net(cloud)
-    assert rel(base.expand(50, -1), net(moved)) <= tol
-    # both directions: the features do depend on the cloud's shape
-    assert rel(base, net(random_cloud(seed=8, dtype=dtype))) > 1e-2
+# -- degrees, paths and parity ----------------------------------------------------------------
 
 
 @pytest.mark.parametrize("improper", [False, True], ids=["rotation", "improper"])
-@pytest.mark.parametrize("options", [{}, {"l_max": 3, "channels": {0: 8, 1: 4, 2: 2, 3: 2}}, {"parity": "even"}],
-                         ids=["default", "l3", "even"])
-def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
+def test_degree_three_layers_transform_with_wigner_d_and_parity(improper):
     # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule: docs/design.md,
     # "Parity and handedness"
-    net = make(**options)
+    net = make(l_max=3, channels={0: 8, 1: 4, 2: 2, 3: 2})
     cloud = random_cloud(n=40)
     gen = torch.Generator().manual_seed(4)
     Q = (random_improper if improper else uniform_rotations)(3, generator=gen, dtype=torch.float64)
@@ -118,29 +96,29 @@ def test_every_layer_transforms_with_wigner_d_and_parity(options, improper):
     assert rel(before[-1][t], after[-1][t]) > 1e-2
 
 
-def test_full_parity_builds_pseudo_quantities_and_even_parity_does_not():
+def test_se3_builds_pseudo_quantities_and_e3_does_not():
     # convention: docs/design.md, "Parity and handedness"; a pseudo-scalar flips sign under a reflection (checked above)
     full = make()
     assert full.symmetry == "SE3"
     assert (0, -1) in full.types_out and (1, 1) in full.types_out  # pseudo-scalar, pseudovector
-    even = make(parity="even")
+    even = make(symmetry="e3")
     assert even.symmetry == "E3"
     assert all(p == proper_parity(l) for l, p in even.types_out)
-    # in "even" mode every path couples proper to proper: l_in + l_f + l_out is even
+    # with e3 every path couples proper to proper: l_in + l_f + l_out is even
     for l_in in range(3):
-        assert all((l_in + l_f + l_out) % 2 == 0 for l_f, l_out in angular_pairs(l_in, [0, 1, 2], "even"))
+        assert all((l_in + l_f + l_out) % 2 == 0 for l_f, l_out in angular_pairs(l_in, [0, 1, 2], "e3"))
     # 1 x 1 -> 1 from a vector (the cross product) is a pseudovector
-    paths = layer_paths({(1, -1): 4}, [0, 1, 2], "full")
+    paths = layer_paths({(1, -1): 4}, [0, 1, 2], "se3")
     assert [(p.l_f, p.t_out) for p in paths if p.t_out[0] == 1 and p.l_f == 1] == [(1, (1, 1))]
 
 
-def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
+def test_mirror_twins_differ_with_se3_and_agree_with_e3():
     # closed form: a helix with a lump is chiral (no rotation maps it onto its mirror image);
     # parity rule: docs/design.md, "Parity and handedness"
     cloud = helix_cloud()
     mirror = rotate(cloud, reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64)))
     turned = rotate(mirror, uniform_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64))
-    full, even = make(), make(parity="even")
+    full, even = make(), make(symmetry="e3")
     assert rel(full(cloud), full(mirror)) > 1e-3
     assert rel(full(cloud), full(turned)) > 1e-3
     assert rel(even(cloud), even(mirror)) <= 1e-9
@@ -154,10 +132,10 @@ def test_mirror_twins_differ_with_full_parity_and_agree_with_even_parity():
     "options",
     [
         {},
-        {"parity": "even", "heads": 1},
+        {"symmetry": "e3", "heads": 1},
         {"l_max": 3, "channels": {0: 4, 1: 2, 2: 2, 3: 2}, "layers": 2},
         {"l_max": 2, "channels": {0: 4, 2: 2}, "radius": 0.9, "cutoff": 0.9},  # a missing degree; radius graph
-        {"channels": {0: 8, 1: 4, 2: 2}, **NORMALS},
+        {**L2, **NORMALS},
         {"context": False},
     ],
     ids=["default", "even", "l3", "radius", "normals", "no-context"],
@@ -190,37 +168,6 @@ def test_fast_path_equals_dense_reference_with_gradients(options):
     assert max(float(g.abs().max()) for g in ref_grads) > 0
     if net.uses_normals:
         assert float(ref_grads[-1].abs().max()) > 0  # the output really depends on the normals
-
-
-# -- global context ---------------------------------------------------------------------------
-
-
-def test_global_vector_readout_matches_numpy_and_transforms_by_parity():
-    # reference: numpy.linalg.det and numpy dot products of the mixed vectors; det[Qa, Qb, Qc] = det Q det[a, b, c]
-    import numpy as np
-
-    torch.manual_seed(0)
-    readout = GlobalVectorReadout(6, chiral=True).double()
-    g = torch.randn(4, 6, 3, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
-    out = readout(g)
-    w = readout.mix.weight.detach().numpy().reshape(3, 6, 6)  # rows: a, b, c mixings
-    for b in range(4):
-        gb = g[b].numpy()
-        a, bb, c = (w[i] @ gb for i in range(3))  # (6, 3) each
-        scale = (gb**2).sum(-1).mean() + readout.floor
-        dots = (a * bb).sum(-1) / scale
-        dets = np.array([np.linalg.det(np.stack([a[i], bb[i], c[i]])) for i in range(6)]) / scale**1.5
-        np.testing.assert_allclose(out[b].detach().numpy(), np.concatenate([dots, dets]), rtol=1e-10, atol=1e-12)
-    # components in (y, z, x) order: polar vectors turn with the Wigner-D of degree 1; Q improper and proper
-    for Q in (random_improper(4, generator=torch.Generator().manual_seed(2), dtype=torch.float64),
-              uniform_rotations(4, generator=torch.Generator().manual_seed(3), dtype=torch.float64)):
-        moved = transform_features({(1, -1): g[:, None]}, Q)[(1, -1)][:, 0]
-        turned = readout(moved)
-        sign = torch.det(Q)[:, None]
-        assert rel(out[:, :6], turned[:, :6]) <= 1e-12  # dot products: invariant
-        assert rel(out[:, 6:] * sign, turned[:, 6:]) <= 1e-12  # triple products: times det Q
-    assert out[:, 6:].abs().min() > 1e-6  # both directions: the pseudo-scalars are not zero to start with
-    assert GlobalVectorReadout(6, chiral=False).width == 6
 
 
 @pytest.mark.parametrize("block", [1, 7 * 8, 10**9], ids=["one-edge", "uneven", "one-piece"])
@@ -265,181 +212,7 @@ def test_context_reaches_past_the_neighbourhood_and_context_off_stays_local():
     assert make(context=False).out_features < make().out_features  # the global readout adds invariants
 
 
-# -- masks and numerics -----------------------------------------------------------------------
-
-
-def test_padding_changes_nothing_for_the_real_points():
-    # convention: docs/design.md, "Tensor shapes": mask True = real point
-    net = make()
-    cloud = random_cloud(b=2, n=40)
-    junk = torch.cat([torch.full((2, 6, 3), 1e3, dtype=torch.float64), torch.zeros(2, 6, 3, dtype=torch.float64)], 1)
-    padded = torch.cat([cloud, junk], 1)
-    mask = torch.cat([torch.ones(2, 40, dtype=torch.bool), torch.zeros(2, 12, dtype=torch.bool)], 1)
-    assert rel(net(cloud), net(padded, mask)) <= 1e-12
-    for plain, pad in zip(net.forward_features(cloud), net.forward_features(padded, mask)):
-        for t in plain:
-            assert rel(plain[t], pad[t][:, :40]) <= 1e-12
-    # the masked slots would matter if they were real points
-    assert rel(net(cloud), net(padded)) > 1e-3
-
-
-def test_masked_softmax_is_stable_and_empty_neighbourhoods_give_zeros():
-    # reference: softmax is invariant to a shift of its inputs (closed form); torch.softmax on valid entries
-    logits = torch.tensor([[1e4, 1e4 + 1.0, -3.0], [0.5, 2.0, 7.0], [1.0, 2.0, 3.0]], dtype=torch.float64,
-                          requires_grad=True)
-    valid = torch.tensor([[True, True, False], [False, False, False], [True, False, True]])
-    a = masked_softmax(logits, valid, dim=-1)
-    e = math.exp(1.0)
-    torch.testing.assert_close(a[0], torch.tensor([1 / (1 + e), e / (1 + e), 0.0], dtype=torch.float64))
-    assert a[1].abs().max() == 0.0
-    torch.testing.assert_close(a[2, [0, 2]], torch.softmax(torch.tensor([1.0, 3.0], dtype=torch.float64), 0))
-    a.square().sum().backward()
-    assert torch.isfinite(logits.grad).all()
-
-
-def test_duplicate_points_stay_finite():
-    # reference: shapes.geometry harmonics are finite at zero vectors; a coincident neighbour has r = 0
-    net = make()
-    cloud = random_cloud(n=40)
-    cloud = torch.cat([cloud, cloud[:, :5]], 1).requires_grad_(True)
-    out = net(cloud)
-    out.sum().backward()
-    assert torch.isfinite(out).all() and torch.isfinite(cloud.grad).all()
-
-
-def test_every_parameter_of_the_default_network_gets_a_gradient():
-    # reference: common practice; an unused parameter would point to a path with no effect
-    net = make().train()
-    net(random_cloud(b=2, n=32)).square().sum().backward()
-    assert [n for n, p in net.named_parameters() if p.grad is None or float(p.grad.abs().max()) == 0.0] == []
-
-
-# -- options --------------------------------------------------------------------------------
-
-
-def test_channel_keys_may_be_strings_and_the_yaml_builds_the_default():
-    # reference: YAML/Hydra deliver mapping keys as strings or ints (docs/design.md, "Options": no mini-language)
-    from hydra.utils import instantiate
-    from omegaconf import OmegaConf
-
-    net = HarmonicAttentionBackbone(channels={"0": 16, "1": 8, "2": 4})
-    assert net.config.channels == {0: 16, 1: 8, 2: 4}
-    conf = OmegaConf.load(Path(__file__).parents[1] / "shapes/conf/backbone/harmonic_attention.yaml")
-    built = instantiate(conf)
-    assert isinstance(built, HarmonicAttentionBackbone)
-    for key in ("l_max", "layers", "heads", "k", "parity", "num_radial", "cutoff", "normals", "context"):
-        assert getattr(built.config, key) == conf[key]
-    assert built.config.channels == {int(k): v for k, v in conf.channels.items()}
-
-
-@pytest.mark.parametrize(
-    "options,match",
-    [
-        ({"l_max": 4}, r"l_max should be in 0\.\.3, got 4"),
-        ({"l_max": -1}, r"l_max should be an integer >= 0, got -1"),
-        ({"channels": {1: 8, 2: 4}}, r"degree 0"),
-        ({"channels": {0: 8, 1: 4, 2: 2, 3: 2}}, r"has degree 3, expected degrees 0\.\.l_max = 0\.\.2"),
-        ({"channels": {0: 8, 1: 0, 2: 4}}, r"channels\[1\] should be a positive channel count, got 0"),
-        ({"channels": {0: 8, 1: 2.5, 2: 4}}, r"should be an integer, got 2\.5"),
-        ({"channels": "0:16,1:8"}, r"should be a mapping"),
-        ({"l_max": 3}, r"degree 3 \(l_max = 3\)"),
-        ({"heads": 3}, r"heads = 3 should divide every channel count"),
-        ({"parity": "odd"}, r"parity should be one of \['full', 'even'\], got 'odd'"),
-        ({"layers": 1}, r"parity 'full' needs l_max >= 1 and layers >= 2"),
-        ({"cutoff": 0.0}, r"cutoff should be a positive number"),
-        ({"radius": -1.0}, r"radius should be a positive number"),
-    ],
-)
-def test_bad_options_raise_config_errors(options, match):
-    with pytest.raises(ConfigError, match=match):
-        HarmonicAttentionBackbone(**options)
-
-
-def test_too_small_cloud_for_k_raises_input_error():
-    net = make(k=16)
-    with pytest.raises(InputError, match=r"k = 16 neighbours needs clouds of at least 17 points, got 12"):
-        net(random_cloud(n=12))
-    # the smallest real cloud of a padded batch decides
-    mask = torch.ones(2, 20, dtype=torch.bool)
-    mask[0, 12:] = False
-    with pytest.raises(InputError, match="got 12"):
-        net(random_cloud(b=2, n=20), mask)
-
-
 # -- surface normals --------------------------------------------------------------------------
-
-def threaded_cloud(n=96, depth=0.5, pitch=1.0, dtype=torch.float64):
-    """Points on the cylinder r = 1, |z| <= 2, with the outward normals of a right-hand thread
-    ``r = 1 + e sin(2 pi z / p - theta)`` whose flanks are finer than the point spacing.
-
-    The point set is mirror-symmetric (every point has its image under x -> -x), so only the
-    normals carry the hand. Normal of ``r(theta, z)``: ``e_r - (1/r) dr/dtheta e_theta - dr/dz e_z``
-    (closed form for a surface of revolution perturbed in r), evaluated with ``depth = e (2 pi / p)``.
-    """
-    g = torch.Generator().manual_seed(21)
-    theta = 2 * math.pi * torch.rand(n // 2, generator=g, dtype=dtype)
-    z = 4 * torch.rand(n // 2, generator=g, dtype=dtype) - 2
-    theta = torch.cat([theta, math.pi - theta])  # (x, y) -> (-x, y): theta -> pi - theta
-    z = torch.cat([z, z])
-    points = torch.stack([torch.cos(theta), torch.sin(theta), z], -1)
-    phase = torch.cos(2 * math.pi * z / pitch - theta)
-    e_r = torch.stack([torch.cos(theta), torch.sin(theta), 0 * z], -1)
-    e_t = torch.stack([-torch.sin(theta), torch.cos(theta), 0 * z], -1)
-    e_z = torch.stack([0 * z, 0 * z, 1 + 0 * z], -1)
-    e = depth * pitch / (2 * math.pi)
-    normal = e_r + e * phase[:, None] * e_t - depth * phase[:, None] * e_z
-    return points[None], (normal / normal.norm(dim=-1, keepdim=True))[None]
-
-
-def turn(points, normals, Q):
-    # closed form: an outward normal is a polar vector, n -> Q n (reflections included)
-    return rotate(points, Q), rotate(normals, Q)
-
-
-@pytest.mark.parametrize("parity", ["full", "even"])
-def test_normals_features_invariant_under_50_rotations_and_translations(parity):
-    # claim: docs/design.md, "Backbone contract"; closed form: normals turn as n -> R n and ignore translations
-    net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    cloud, normals = random_cloud(), random_normals()
-    R = uniform_rotations(50, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
-    shift = torch.randn(50, 1, 3, generator=torch.Generator().manual_seed(2), dtype=torch.float64) * 5
-    moved, turned = turn(cloud.expand(50, -1, -1), normals.expand(50, -1, -1), R)
-    base = net(cloud, normals=normals)
-    assert rel(base.expand(50, -1), net(moved + shift, normals=turned)) <= 1e-9
-    # both directions: the features depend on the normals, not only on the points
-    assert rel(base, net(cloud, normals=random_normals(seed=18))) > 1e-2
-
-
-@pytest.mark.parametrize("improper", [False, True], ids=["rotation", "improper"])
-@pytest.mark.parametrize("parity", ["full", "even"])
-def test_normals_every_layer_transforms_with_wigner_d_and_parity(parity, improper):
-    # reference: Wigner-D from shapes.geometry (checked against sympy there); parity rule: docs/design.md,
-    # "Parity and handedness";
-    # closed form: an outward normal is a polar vector, n -> Q n
-    net = make(parity=parity, channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    cloud, normals = random_cloud(n=40), random_normals(n=40)
-    gen = torch.Generator().manual_seed(4)
-    Q = (random_improper if improper else uniform_rotations)(3, generator=gen, dtype=torch.float64)
-    before = net.forward_features(cloud.expand(3, -1, -1), normals=normals.expand(3, -1, -1))
-    moved, turned = turn(cloud.expand(3, -1, -1), normals.expand(3, -1, -1), Q)
-    after = net.forward_features(moved, normals=turned)
-    for layer_before, layer_after in zip(before, after):
-        expected = transform_features(layer_before, Q)
-        for t in layer_before:
-            assert rel(expected[t], layer_after[t]) <= 1e-9, t
-    # the normals enter as degree-1 inputs: the first layer's degree-1 features do turn
-    assert rel(before[0][(1, -1)], after[0][(1, -1)]) > 1e-2
-
-
-def test_turning_the_points_but_not_the_normals_changes_the_output():
-    # closed form: a consistent pose turns both (n -> R n); turning only the points breaks the surface
-    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    cloud, normals = random_cloud(), random_normals()
-    R = uniform_rotations(4, generator=torch.Generator().manual_seed(6), dtype=torch.float64)
-    base = net(cloud, normals=normals).expand(4, -1)
-    moved, turned = turn(cloud.expand(4, -1, -1), normals.expand(4, -1, -1), R)
-    assert rel(base, net(moved, normals=turned)) <= 1e-9
-    assert rel(base, net(moved, normals=normals.expand(4, -1, -1))) > 1e-2
 
 
 def test_normal_inputs_match_numpy_and_transform_by_type():
@@ -447,13 +220,15 @@ def test_normal_inputs_match_numpy_and_transform_by_type():
     # closed form: n -> Q n, so scalars stay, vectors turn, pseudo-scalars take det Q
     import numpy as np
 
-    from shapes.backbones.harmonic_attention import normal_inputs
-
     net = make(**NORMALS)
     cloud, normals = threaded_cloud()
     centred = cloud - cloud.mean(1, keepdim=True)
-    mask = torch.ones(cloud.shape[:2], dtype=torch.bool)
-    out = normal_inputs(centred, normals, mask, net.edge_frame(centred, mask))
+
+    def inputs(points, normals):
+        prepared = Cloud.of(net, points, None, normals)
+        return normal_inputs(prepared, edges(prepared, net.config.k))
+
+    out = inputs(centred, normals)
     y = centred[0].numpy() / np.sqrt(np.mean(np.sum(centred[0].numpy() ** 2, 1)))
     moment = 3 * (y.T @ y / len(y)) / np.mean(np.sum(y**2, 1))
     n = normals[0].numpy()
@@ -467,69 +242,75 @@ def test_normal_inputs_match_numpy_and_transform_by_type():
     assert aniso > 0.1 and chi.mean() < -5e-3
     Q = random_improper(1, generator=torch.Generator().manual_seed(8), dtype=torch.float64)
     moved, turned = turn(centred, normals, Q)
-    mirrored = normal_inputs(moved, turned, mask, net.edge_frame(moved, mask))
+    mirrored = inputs(moved, turned)
     torch.testing.assert_close(mirrored.scalars, out.scalars, rtol=1e-10, atol=1e-12)
     torch.testing.assert_close(mirrored.vectors, out.vectors @ Q.transpose(-1, -2)[:, None], rtol=1e-10, atol=1e-12)
     torch.testing.assert_close(mirrored.pseudo, -out.pseudo, rtol=1e-10, atol=1e-12)
 
 
-def test_mirror_twins_told_apart_by_their_normals_with_full_parity_only():
+def test_mirror_twins_told_apart_by_their_normals_with_se3_only():
     # common practice: a thread is chiral, its mirror image is the other hand (docs/design.md, "Parity and handedness");
     # closed form: an outward normal is a polar vector, n -> Q n under the reflection too
     cloud, normals = threaded_cloud()
     S = reflection(torch.tensor([1.0, 0.0, 0.0], dtype=torch.float64))
     Q = uniform_rotations(1, generator=torch.Generator().manual_seed(9), dtype=torch.float64) @ S
     mirror = turn(cloud, normals, Q)
-    full = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    even = make(parity="even", channels={0: 8, 1: 4, 2: 2}, **NORMALS)
+    full = make(**L2, **NORMALS)
+    even = make(symmetry="e3", **L2, **NORMALS)
     assert rel(full(cloud, normals=normals), full(mirror[0], normals=mirror[1])) > 1e-2
     assert rel(even(cloud, normals=normals), even(mirror[0], normals=mirror[1])) <= 1e-9
-    # the point set alone is mirror-symmetric: without normals even parity "full" cannot tell the hands
-    bare = make(channels={0: 8, 1: 4, 2: 2}, k=8)
+    # the point set alone is mirror-symmetric: without normals even se3 cannot tell the hands
+    bare = make(**L2)
     assert rel(bare(cloud), bare(mirror[0])) <= 1e-9
 
 
-def test_padding_with_junk_normals_changes_nothing_and_every_parameter_learns():
-    # convention: docs/design.md, "Tensor shapes": mask True = real point; common practice: no dead parameters
-    net = make(channels={0: 8, 1: 4, 2: 2}, **NORMALS)
-    cloud, normals = random_cloud(b=2, n=40), random_normals(b=2, n=40)
-    padded = torch.cat([cloud, torch.full((2, 6, 3), 1e3, dtype=torch.float64)], 1)
-    junk = torch.cat([normals, torch.full((2, 6, 3), -7.0, dtype=torch.float64)], 1)
-    mask = torch.cat([torch.ones(2, 40, dtype=torch.bool), torch.zeros(2, 6, dtype=torch.bool)], 1)
-    assert rel(net(cloud, normals=normals), net(padded, mask, normals=junk)) <= 1e-12
-    net.train()
-    net(cloud, normals=normals).square().sum().backward()
-    assert [n for n, p in net.named_parameters() if p.grad is None or float(p.grad.abs().max()) == 0.0] == []
+# -- options --------------------------------------------------------------------------------
 
 
-def test_missing_or_misshapen_normals_raise_and_normals_false_ignores_them():
-    from shapes.backbones import Classifier
+def test_channel_keys_may_be_strings_as_hydra_gives_them():
+    # reference: YAML/Hydra deliver mapping keys as strings or ints (docs/design.md, "Options": no mini-language)
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
 
-    net = make(**NORMALS)
-    assert net.uses_normals and Classifier(net, 3).uses_normals
-    cloud = random_cloud(n=20)
-    with pytest.raises(InputError, match=r"needs normals \(B, N, 3\)") as missing:
-        net(cloud)
-    assert "\n" not in str(missing.value)
-    with pytest.raises(InputError, match=r"normals should have the points' shape \(1, 20, 3\), got \(1, 19, 3\)"):
-        net(cloud, normals=random_normals(n=19))
-    with pytest.raises(InputError, match="needs normals"):
-        net.forward_features(cloud)
-    plain = make()
-    assert not plain.uses_normals and not Classifier(plain, 3).uses_normals
-    assert torch.equal(plain(cloud), plain(cloud, normals=random_normals(n=20)))
-    assert torch.equal(plain(cloud), plain(cloud, normals=random_normals(n=5)))  # not even checked
+    net = HarmonicAttentionBackbone(l_max=2, channels={"0": 16, "1": 8, "2": 4})
+    assert net.config.channels == {0: 16, 1: 8, 2: 4}
+    built = instantiate(OmegaConf.create({"_target_": "shapes.backbones.harmonic_attention.HarmonicAttentionBackbone",
+                                          "l_max": 2, "channels": {0: 16, 1: 8, 2: 4}}))
+    assert built.config.channels == {0: 16, 1: 8, 2: 4}
 
 
 @pytest.mark.parametrize(
     "options,match",
     [
-        ({"normals": "yes"}, r"normals should be true or false, got 'yes'"),
-        ({"context": 1}, r"context should be true or false, got 1"),
-        ({"edge_block": 0}, r"edge_block should be an integer >= 1, got 0"),
-        ({"normals": True, "channels": {0: 8, 2: 4}}, r"needs channels for degree 1"),
+        ({"l_max": 4}, r"backbone\.l_max should be an integer in \[0, 3\], got 4"),
+        ({"l_max": -1}, r"backbone\.l_max should be an integer in \[0, 3\], got -1"),
+        ({"channels": {1: 8}}, r"degree 0"),
+        ({"channels": {0: 8, 1: 4, 2: 2}}, r"channels key \(a degree\) should be an integer in \[0, 1\], got 2"),
+        ({"channels": {0: 8, 1: 0}}, r"channels\[1\] \(a channel count\) should be an integer >= 1, got 0"),
+        ({"channels": {0: 8, 1: 2.5}}, r"should be an integer >= 1, got 2\.5"),
+        ({"channels": "0:16,1:8"}, r"should be a mapping"),
+        ({"l_max": 2}, r"degree 2 \(l_max = 2\)"),
+        ({"heads": 3}, r"heads = 3 should divide every channel count"),
+        ({"symmetry": "odd"}, r"backbone\.symmetry should be one of se3, e3, got 'odd'"),
+        ({"parity": "full"}, r"'parity' is now symmetry \(se3 \| e3"),
+        ({"layers": 1}, r"symmetry se3 needs l_max >= 1 and layers >= 2"),
+        ({"cutoff": 0.0}, r"backbone\.cutoff should be a finite number > 0"),
+        ({"radius": -1.0}, r"backbone\.radius should be null or a finite number > 0"),
     ],
 )
-def test_bad_normals_options_raise_config_errors(options, match):
+def test_bad_options_raise_config_errors(options, match):
+    with pytest.raises(ConfigError, match=match):
+        HarmonicAttentionBackbone(**options)
+
+
+@pytest.mark.parametrize(
+    "options,match",
+    [
+        ({"context": 1}, r"backbone\.context should be true or false, got 1"),
+        ({"edge_block": 0}, r"backbone\.edge_block should be an integer >= 1, got 0"),
+        ({"normals": True, "l_max": 2, "channels": {0: 8, 2: 4}}, r"needs channels for degree 1"),
+    ],
+)
+def test_bad_context_block_and_normals_options_raise_config_errors(options, match):
     with pytest.raises(ConfigError, match=match):
         HarmonicAttentionBackbone(**options)
