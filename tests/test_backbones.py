@@ -145,6 +145,7 @@ def normals():
 
 
 def test_every_registered_backbone_and_shipped_yaml_is_in_the_table():
+    # convention: DEVELOPERS.md, "Adding a backbone": one file, one yaml, rows of this table
     assert set(BACKBONES) == {c.name for c in CASES}
     assert {p.stem for p in SHIPPED_BACKBONES.glob("*.yaml")} == set(BACKBONES) | {"d2"}  # d2: not a network
 
@@ -164,6 +165,7 @@ def test_shipped_yaml_agrees_with_the_config_defaults(name):
 
 @pytest.mark.parametrize("c", CASES, ids=IDS)
 def test_output_shape_and_declared_symmetry(c, cloud, normals):
+    # convention: docs/design.md, "Backbone contract": (B, N, 3) -> (B, out_features), symmetry declared
     net = make(c)
     out = call(net, cloud, None, normals)
     assert out.shape == (3, net.out_features)
@@ -174,6 +176,7 @@ def test_output_shape_and_declared_symmetry(c, cloud, normals):
 
 @pytest.mark.parametrize("c,what", BAD, ids=[f"{c.id}-{what}" for c, what in BAD])
 def test_each_bad_input_gives_one_clean_line(c, what, cloud, normals):
+    # convention: docs/design.md, "Backbone contract" (the input checks) and DEVELOPERS.md: one line per mistake
     net = make(c)
     good = {"points": cloud, "mask": torch.ones(3, N, dtype=torch.bool), "normals": normals if net.uses_normals else None}
     breaks, message = c.bad[what]
@@ -184,6 +187,7 @@ def test_each_bad_input_gives_one_clean_line(c, what, cloud, normals):
 
 @pytest.mark.parametrize("c", CASES, ids=IDS)
 def test_unknown_and_renamed_options_raise_one_line(c):
+    # convention: README, "Backbones": the old names handedness and parity are refused naming symmetry
     with pytest.raises(ConfigError, match="no option"):
         build_backbone(c.name, **c.built, nonsense=1)
     for old in RENAMED:
@@ -203,6 +207,7 @@ def test_stored_options_of_old_checkpoints_map_to_symmetry():
 
 @pytest.mark.parametrize("c", CASES, ids=IDS)
 def test_gradients_reach_every_parameter_and_input(c, cloud, normals):
+    # common practice: an unused parameter or input points to a path with no effect
     net = make(c).train()
     cloud, normals = cloud.clone().requires_grad_(True), normals.clone().requires_grad_(True)
     call(net, cloud, None, normals).square().sum().backward()
@@ -216,6 +221,7 @@ def test_gradients_reach_every_parameter_and_input(c, cloud, normals):
 
 @pytest.mark.parametrize("c", CASES, ids=IDS)
 def test_state_dict_round_trip(c, cloud, normals):
+    # convention: DEVELOPERS.md, "Run folders": a checkpoint's options and weights rebuild the network exactly
     net = make(c)
     again = build_backbone(c.name, **net.config_dict()).to(torch.float64).eval()
     again.load_state_dict(net.state_dict())
@@ -322,6 +328,7 @@ def test_normal_signs_ignored_exactly_unless_signed(c, signed, cloud, normals):
 
 @pytest.mark.parametrize("c", EQUIVARIANT, ids=EQ_IDS)
 def test_float32_invariance_within_tolerance(c, cloud, normals):
+    # common practice: float32 round-off (eps ~ 1e-7) grown through a few layers stays far below 1e-4
     net = make(c, dtype=torch.float32)
     x, n = cloud.float(), normals.float()
     R = uniform_rotations(3, generator=torch.Generator().manual_seed(5))
@@ -330,6 +337,7 @@ def test_float32_invariance_within_tolerance(c, cloud, normals):
 
 @pytest.mark.parametrize("c", CASES, ids=IDS)
 def test_flags_must_be_booleans(c):
+    # convention: docs/design.md, "Options": options are plain YAML values, a flag is true or false
     for flag in ("normals", "signed_normals", "smooth_neighbours", "context"):
         if flag in {f.name for f in dataclasses.fields(backbone_class(c.name).Config)}:
             with pytest.raises(ConfigError, match=rf"backbone\.{flag} should be true or false, got 'yes'"):

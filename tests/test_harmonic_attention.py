@@ -299,6 +299,7 @@ def test_channel_keys_may_be_strings_as_hydra_gives_them():
     ],
 )
 def test_bad_options_raise_config_errors(options, match):
+    # convention: DEVELOPERS.md, "Adding a backbone": each option checked by shapes/_checks.py, one line
     with pytest.raises(ConfigError, match=match):
         HarmonicAttentionBackbone(**options)
 
@@ -312,5 +313,6 @@ def test_bad_options_raise_config_errors(options, match):
     ],
 )
 def test_bad_context_block_and_normals_options_raise_config_errors(options, match):
+    # convention: DEVELOPERS.md, "Adding a backbone": each option checked by shapes/_checks.py, one line
     with pytest.raises(ConfigError, match=match):
         HarmonicAttentionBackbone(**options)

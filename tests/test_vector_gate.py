@@ -108,6 +108,7 @@ def test_radius_graph_with_an_absolute_cutoff_is_invariant_too():
 
 
 def test_readout_width_follows_the_symmetry():
+    # convention: shapes/backbones/vector_gate.py, the readout: mean and max of s, |v| and, with se3, |a| and p
     handed, blind = make(), make(symmetry="e3")
     S, V = SMALL["scalars"], SMALL["vectors"]
     assert handed.out_features == 2 * (S + 3 * V)  # mean + max of s, |v|, |a|, p
@@ -139,5 +140,6 @@ def test_readout_width_follows_the_symmetry():
     ],
 )
 def test_bad_options_raise_config_error(options, match):
+    # convention: DEVELOPERS.md, "Adding a backbone": each option checked by shapes/_checks.py, one line
     with pytest.raises(ConfigError, match=match):
         VectorGateBackbone(**options)
