@@ -153,7 +153,7 @@ def test_every_registered_backbone_and_shipped_yaml_is_in_the_table():
 @pytest.mark.parametrize("name", sorted(BACKBONES) + ["d2"])
 def test_shipped_yaml_agrees_with_the_config_defaults(name):
     # convention: docs/design.md, "Options": the Config dataclass holds every default, the yaml repeats them
-    from shapes.baseline import D2Options
+    from shapes.classic import D2Options
 
     config = D2Options if name == "d2" else backbone_class(name).Config
     defaults = {f.name: f.default if f.default is not dataclasses.MISSING else f.default_factory()
