@@ -191,8 +191,12 @@ def _pulleys(gen, n):
 
 def _bushings(gen, n):
     outer = grid_strata(gen, n, 8.0, 40.0, 1.0)
-    # Length from half the outside diameter (short spacers, the length of a nut) to twice it.
-    inner, length = strata(gen, n, 0.55, 0.8), strata(gen, n, 0.5, 2.0)
+    # Length from half the outside diameter (short spacers, the length of a nut) to twice it, drawn
+    # apart for plain (even i) and flanged (odd i) bushings so that each style spans the whole range:
+    # a short plain tube is the part most easily taken for a hex nut.
+    inner, length = strata(gen, n, 0.55, 0.8), [0.0] * n
+    for style in (0, 1):
+        length[style::2] = strata(gen, len(range(style, n, 2)), 0.5, 2.0)
     collar, collar_t = strata(gen, n, 1.35, 1.7), strata(gen, n, 0.12, 0.2)
     out = []
     for i, od in enumerate(outer):
