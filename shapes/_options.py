@@ -98,6 +98,7 @@ RULES = {
     "sample.copies": _copies,
     "sample.oversample": _positive_int,
     "sample.noise": lambda n, v: check.number(n, v, low=0),
+    "sample.twins": lambda n, v: check.choice(n, v, ("auto", "derived", "declared")),
     # train (train_classifier checks the same through shapes.train.check_settings)
     "train.epochs": _positive_int,
     "train.batch_size": _positive_int,

@@ -91,7 +91,7 @@ def _verb_help(verb: str, overrides: list[str]) -> str:
              "choices:"]
     lines += [f"  {g}: {', '.join(opts)}" for g, opts in _groups().items()]
     lines += ["  train.poses: cad, upright, any", "  eval.poses: a list from cad, upright, any, mirrored",
-              "  sample.mode: surface, scan, mixed"]
+              "  sample.mode: surface, scan, mixed", "  sample.twins: auto, derived, declared"]
     lines += ["", "options (current values; override any as key=value):", OmegaConf.to_yaml(shown).rstrip()]
     return "\n".join(lines)
 
@@ -144,13 +144,14 @@ def _run_parts(cfg) -> None:
 
 
 def _run_sample(cfg) -> None:
-    from shapes.data import build_dataset, read_meta
+    from shapes.data import build_dataset, read_meta, twin_printer
 
     s = cfg.sample
     out = build_dataset(cfg.meshes, cfg.data, points=s.points, copies=_plain(s.copies), mode=s.mode,
                         scan_fraction=s.scan_fraction, oversample=s.oversample, noise=s.noise,
                         normals=s.normals, normals_k=s.normals_k,
-                        normals_points=s.normals_points, seed=cfg.seed, progress=True)
+                        normals_points=s.normals_points, seed=cfg.seed, progress=True,
+                        twins=s.twins, say=twin_printer())
     meta = read_meta(out)
     print(f"wrote {sum(meta['counts'].values())} clouds of {s.points} points "
           f"({', '.join(f'{k} {v}' for k, v in meta['counts'].items())}) for {len(meta['classes'])} classes to {out}/")
@@ -257,7 +258,8 @@ def _run_demo(cfg) -> None:
     report = run_demo(cfg.meshes, d.out, factories, fit=_fit, evaluate=evaluate_run, points=d.points,
                       copies=_plain(d.copies), epochs=d.epochs,
                       mode=cfg.sample.mode, scan_fraction=cfg.sample.scan_fraction, normals=cfg.sample.normals,
-                      seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror)
+                      seed=cfg.seed, threads=cfg.train.threads, minutes=minutes, mirror=d.mirror,
+                      twins=cfg.sample.twins)
     print(f"demo report: {report}")
 
 

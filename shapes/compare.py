@@ -21,9 +21,9 @@ from shapes._atomic import write_json
 from shapes.errors import ConfigError, DataError
 from shapes.geometry import POSE_REGIMES, check_regime
 from shapes.run import CHECKPOINT, HISTORY, METRICS, read_metrics
-from shapes.report import REGIME_NOTES, pyplot, save_figure, write_report
+from shapes.report import CURVES, REGIME_NOTES, pyplot, save_figure, visible_curve, write_report
 
-__all__ = ["find_runs", "load_run_metrics", "group_runs", "summarize", "compare_runs"]
+__all__ = ["find_runs", "load_run_metrics", "group_runs", "summarize", "compare_runs", "pose_matrix"]
 
 # the run markers: a folder holding one of these is a run; any other folder is searched for runs
 _RUN_FILES = (METRICS, CHECKPOINT, HISTORY)
@@ -183,6 +183,8 @@ def _row_stats(members: list[dict], regimes: list[str]) -> dict:
 
 
 def _curve(members: list[dict], key: str) -> dict[str, dict]:
+    if key == "visible_sweep":  # kept per visible-share bin under the scans' record
+        members = [{key: visible_curve(m)} for m in members]
     points = [p for p in (members[0].get(key) or {})]
     return {p: summarize([(m.get(key) or {}).get(p) for m in members]) for p in points}
 
@@ -209,11 +211,51 @@ def _plot_curves(groups: dict[str, dict], key: str, xlabel: str, path: Path, log
     ax.set_xlabel(xlabel)
     ax.set_ylabel("accuracy (%), mean ± sd over seeds")
     ax.set_ylim(0, 102)
-    if log_x:
+    if log_x and key == "point_count_sweep":
+        ax.set_xscale("log", base=2)
+    elif log_x:
         ax.set_xscale("symlog", linthresh=0.01)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     return save_figure(fig, path)
+
+
+# the overlaid curves: plot name (compare_<name>.png) -> metrics key; the axes are report.CURVES'
+_PLOTS = {"angle": "angle_sweep", "noise": "noise_sweep", "outliers": "outlier_sweep",
+          "points": "point_count_sweep", "visible": "visible_sweep"}
+_PLOT_TEXT = {
+    "angle": ("Accuracy against rotation angle", "Each cloud turned by a fixed angle about a random axis."),
+    "noise": ("Accuracy under sensor noise", "Gaussian noise of σ RMS radii on every point, under uniform random "
+              "poses."),
+    "outliers": ("Accuracy under stray points", "A share of each cloud's points replaced by points drawn uniformly "
+                 "in its bounding box, under uniform random poses; no clean-up."),
+    "points": ("Accuracy against point count", "Each cloud cut to a random subset of that many of its points, "
+               "under uniform random poses (counts up to the test clouds' own)."),
+    "visible": ("Accuracy against the visible share of the surface", "The test split's single-view scans, "
+                "binned by the share of the part's surface each shows (x: the bin's middle), under uniform random "
+                "poses."),
+}
+
+
+def pose_matrix(runs: list[dict], regimes: list[str]) -> dict[str, dict]:
+    """The train x test pose matrix of each configuration: label (the configuration less its
+    ``train.poses``) -> training regime -> ``{"runs": n, test regime: accuracy summary}``.
+
+    The rows come from each run's recorded ``train.poses`` (``none`` for a model of distances, the D2
+    baseline); a sweep over ``train.poses`` fills several rows of one configuration.
+    """
+    bare = [{**m, "train": {k: v for k, v in (m.get("train") or {}).items() if k != "poses"},
+             "_poses": str((m.get("train") or {}).get("poses") or "none")} for m in runs]
+    order = {p: i for i, p in enumerate(POSE_REGIMES)}
+    matrix = {}
+    for label, members in group_runs(bare).items():
+        rows = {}
+        for trained in sorted({m["_poses"] for m in members}, key=lambda p: order.get(p, len(order))):
+            sel = [m for m in members if m["_poses"] == trained]
+            rows[trained] = {"runs": len(sel), **{r: summarize([m["regimes"][r]["accuracy"] for m in sel])
+                                                  for r in regimes}}
+        matrix[label] = rows
+    return matrix
 
 
 def compare_runs(paths, out: str | os.PathLike, *, poses=None) -> Path:
@@ -244,17 +286,14 @@ def compare_runs(paths, out: str | os.PathLike, *, poses=None) -> Path:
             "runs": [m["run"] for m in members], "seeds": [m.get("train", {}).get("seed") for m in members],
             "train_poses": members[0].get("train", {}).get("poses"), "threads": _threads(members),
             "stats": _row_stats(members, regimes),
-            "curves": {"angle_sweep": _curve(members, "angle_sweep"), "noise_sweep": _curve(members, "noise_sweep")},
+            "curves": {key: _curve(members, key) for key in CURVES},
         }
-    plots = {
-        "angle": _plot_curves(groups, "angle_sweep", "rotation angle about a random axis (degrees)",
-                              out / "compare_angle.png"),
-        "noise": _plot_curves(groups, "noise_sweep", "Gaussian noise σ (RMS radii), uniform random poses",
-                              out / "compare_noise.png", log_x=True),
-    }
+    plots = {name: _plot_curves(groups, key, CURVES[key][0], out / f"compare_{name}.png", log_x=CURVES[key][1])
+             for name, key in _PLOTS.items()}
     result = {"format": 1, "regimes": regimes, "classes": runs[0]["classes"],
               "statistic": "mean ± sample standard deviation (ddof=1) over the runs of one configuration",
-              "groups": groups, "plots": {k: p.name for k, p in plots.items() if p}}
+              "groups": groups, "pose_matrix": pose_matrix(runs, regimes),
+              "plots": {k: p.name for k, p in plots.items() if p}}
     write_json(out / "compare.json", result)
     return write_report(out / "compare.md", _markdown(result, runs))
 
@@ -289,16 +328,33 @@ def _markdown(result: dict, runs: list[dict]) -> str:
             "time*: from each run's train_history.json; *threads*: train.threads (default: torch's own); "
             "*parameters*: numbers the model learned; *inference parts/s*: test clouds classified per second "
             "during evaluation.", ""]
-    if result["plots"].get("angle"):
-        text += ["## Accuracy against rotation angle", "", "Each cloud turned by a fixed angle about a random "
-                 "axis; the band is ± one standard deviation over seeds.", "",
-                 f"![accuracy against rotation angle]({result['plots']['angle']})", ""]
-    if result["plots"].get("noise"):
-        text += ["## Accuracy under sensor noise", "", "Gaussian noise of σ RMS radii on every point, under "
-                 "uniform random poses.", "", f"![accuracy under noise]({result['plots']['noise']})", ""]
+    text += _matrix_markdown(result["pose_matrix"], regimes)
+    for name, (title, note) in _PLOT_TEXT.items():
+        if result["plots"].get(name):
+            text += [f"## {title}", "", note + " The band is ± one standard deviation over seeds.", "",
+                     f"![{title.lower()}]({result['plots'][name]})", ""]
     text += ["## Runs", "", "| configuration | seed | run folder | test data |", "|---|---|---|---|"]
     for label, g in groups.items():
         for seed, run in zip(g["seeds"], g["runs"]):
             data = next(m.get("data") for m in runs if m["run"] == run)
             text.append(f"| `{label}` | {seed} | `{run}` | `{data}` |")
     return "\n".join(text) + "\n"
+
+
+def _matrix_markdown(matrix: dict[str, dict], regimes: list[str]) -> list[str]:
+    """The train x test pose matrix as one table per configuration (rows: training regime)."""
+    if not matrix:
+        return []
+    several = any(len(rows) > 1 for rows in matrix.values())
+    text = ["## Train × test poses", "",
+            "Accuracy of each configuration by the regime it was trained with (rows, from each run's "
+            "`train.poses`) and the regime it was tested under (columns), mean ± sd over seeds. "
+            + ("" if several else "Every configuration here was trained with one regime: a sweep "
+               "(`shapes train -m train.poses=cad,upright,any`) fills the other rows."), ""]
+    for label, rows in matrix.items():
+        text += [f"**`{label}`**", "", "| train poses ↓, test poses → | runs | " + " | ".join(regimes) + " |",
+                 "|---|---|" + "---|" * len(regimes)]
+        for trained, cells in rows.items():
+            text.append(f"| {trained} | {cells['runs']} | " + " | ".join(_fmt(cells[r], "pct") for r in regimes) + " |")
+        text.append("")
+    return text

@@ -12,7 +12,7 @@ import time
 from pathlib import Path
 from typing import Callable
 
-from shapes.data import build_dataset, read_meta
+from shapes.data import build_dataset, read_meta, twin_printer
 from shapes.report import comparison_report, run_report
 from shapes.seeding import seed_everything
 
@@ -29,7 +29,7 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
              copies: dict | None = None, epochs: int = 40, seed: int = 0,
              threads: int | None = None, repeats: int = 3, minutes: dict[str, float] | None = None,
              mirror: float = 0.0, mode: str = "mixed", scan_fraction: float = 0.5,
-             normals: str = "estimated") -> Path:
+             normals: str = "estimated", twins: str = "auto") -> Path:
     """Run the whole pipeline on the catalog in ``meshes``; return the combined report's path.
 
     ``backbones`` maps a name to a function that builds that backbone (or the baseline's options);
@@ -42,7 +42,8 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
     per part instance and split (None: :data:`DEMO_COPIES`); ``mirror`` is ``TrainSettings.mirror`` for every backbone.
     ``mode``, ``scan_fraction`` and ``normals`` are the sampler's (:func:`shapes.data.build_dataset`): by
     default half the clouds are single-view virtual scans and every cloud's normals are estimated
-    from its points, so the models are ready for bare scan files.
+    from its points, so the models are ready for bare scan files. ``twins`` is ``sample.twins``
+    (:func:`shapes.data.resolve_twins`): the mirror-twin map found from the geometry or checked by it.
     """
     minutes = dict(DEMO_MINUTES if minutes is None else minutes)
     started = time.perf_counter()
@@ -55,7 +56,7 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
     data = out / "data"
     print(f"[demo] sampling {points}-point clouds from {meshes}/", flush=True)
     build_dataset(meshes, data, points=points, copies=DEMO_COPIES if copies is None else copies, seed=seed,
-                  mode=mode, scan_fraction=scan_fraction, normals=normals)
+                  mode=mode, scan_fraction=scan_fraction, normals=normals, twins=twins, say=twin_printer("[demo] "))
     meta = read_meta(data)
     runs = {}
     for name, make in backbones.items():

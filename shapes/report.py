@@ -17,7 +17,8 @@ import numpy as np
 from shapes._atomic import atomic_path, write_text
 
 __all__ = ["run_report", "comparison_report", "plot_confusion", "plot_angle_sweep", "plot_reliability",
-           "markdown_to_html", "write_report", "pyplot", "save_figure"]
+           "plot_perturbations", "markdown_to_html", "write_report", "pyplot", "save_figure", "pose_matrix_row",
+           "perturbation_sections", "twin_warnings", "visible_curve", "CURVES"]
 
 REGIME_NOTES = {
     "cad": "as modelled in CAD",
@@ -215,6 +216,7 @@ def run_report(metrics: dict, out_dir: str | os.PathLike) -> Path:
     for line in (hand_note(metrics), cost_line(metrics)):
         if line:
             text += [line, ""]
+    text += twin_warnings(metrics) + pose_matrix_row(metrics)
     scans = scans_table({name: metrics})
     if scans:
         text += ["## Single-view scans", "", "The test split's virtual scans alone (one view each, normals as the "
@@ -226,8 +228,119 @@ def run_report(metrics: dict, out_dir: str | os.PathLike) -> Path:
     if metrics.get("noise_sweep"):
         text += ["## Accuracy under sensor noise (uniform random poses; σ in RMS radii)", "",
                  _sweep_table({name: metrics}, "noise_sweep", "σ="), ""]
+    text += perturbation_sections(metrics, out_dir)
     text += [f"![confusion {p}]({p})" for p in pngs]
     return write_report(out_dir / "report.md", "\n".join(text) + "\n")
+
+
+# -- the train x test pose matrix, robustness curves and the twin check of a run -----------------
+
+# the curves a run's metrics hold, as (metrics key, x-axis label, log x): the compare job overlays the same
+CURVES = {
+    "angle_sweep": ("rotation angle about a random axis (degrees)", False),
+    "noise_sweep": ("Gaussian noise σ (RMS radii), uniform random poses", True),
+    "outlier_sweep": ("share of points replaced by stray points, uniform random poses", False),
+    "point_count_sweep": ("points per cloud (random subset), uniform random poses", True),
+    "visible_sweep": ("share of the surface a single-view scan shows (bin middle), uniform random poses", False),
+}
+
+
+_SHORT = {"noise_sweep": "Gaussian noise σ (RMS radii)", "outlier_sweep": "share of stray points",
+          "point_count_sweep": "points per cloud", "visible_sweep": "visible share of the surface (scans)"}
+
+
+def visible_curve(metrics: dict) -> dict[str, float]:
+    """The scans' accuracy against visible share as ``{bin middle: accuracy}`` (empty without scans)."""
+    bins = (metrics.get("scans") or {}).get("visible_sweep") or {}
+    out = {}
+    for label, cell in bins.items():
+        lo, hi = (float(v) for v in label.split("-"))
+        out[f"{(lo + hi) / 2:g}"] = cell["accuracy"]
+    return out
+
+
+def pose_matrix_row(metrics: dict) -> list[str]:
+    """This run's row of the train x test pose matrix, as report lines."""
+    trained = (metrics.get("train") or {}).get("poses")
+    regimes = list(metrics["regimes"])
+    head = "| train poses ↓, test poses → | " + " | ".join(regimes) + " |"
+    row = (f"| {trained or 'no poses (a model of distances)'} | "
+           + " | ".join(_pct(metrics["regimes"][r]["accuracy"]) for r in regimes) + " |")
+    return ["## Train × test poses", "",
+            f"This run was trained with `train.poses={trained}`; its accuracy under each test regime is one row of "
+            "the train × test pose matrix. A sweep over the training regimes "
+            "(`shapes train -m train.poses=cad,upright,any`) evaluated and then compared with `shapes compare` "
+            "fills the whole matrix.", "", head, "|---|" + "---|" * len(regimes), row, ""]
+
+
+def twin_warnings(metrics: dict) -> list[str]:
+    """Where the mirror-twin map came from, and the geometry's disagreements with it, as report lines."""
+    check = metrics.get("twin_check")
+    if not check:
+        return []
+    lines = ["## Mirror twins", "", f"Mirror-twin map: {check.get('source', 'declared')}."]
+    if check.get("unpaired"):
+        lines[-1] += (" Handed classes whose mirror twin is not in the catalog: "
+                      + ", ".join(f"`{c}`" for c in check["unpaired"])
+                      + "; their mirror images must be called *not a known part*.")
+    unknown = metrics.get("unknown_mirror") or {}
+    if unknown.get("clouds"):
+        lines[-1] += (f" Of their {unknown['clouds']} mirror images (uniform random poses), "
+                      f"{_pct(unknown['named_as_itself'])} were named as the part itself and "
+                      f"{_pct(unknown['rejected'])} fell below the confidence that accepts "
+                      f"{_pct(unknown['accept'])} of the known test parts.")
+    lines.append("")
+    for warning in check.get("warnings") or ():
+        lines += [f"**Warning:** {warning}", ""]
+    return lines
+
+
+def plot_perturbations(metrics: dict, path: str | os.PathLike) -> Path | None:
+    """Accuracy against each scanner imperfection the run was measured under, one panel each."""
+    curves = {key: metrics.get(key) or {} for key in ("noise_sweep", "outlier_sweep", "point_count_sweep")}
+    curves["visible_sweep"] = visible_curve(metrics)
+    curves = {k: v for k, v in curves.items() if v}
+    if not curves:
+        return None
+    plt = pyplot()
+    fig, axes = plt.subplots(1, len(curves), figsize=(3.3 * len(curves), 3.2), squeeze=False)
+    for ax, (key, curve) in zip(axes[0], curves.items()):
+        label, log_x = CURVES[key]
+        ax.plot([float(x) for x in curve], [100 * v for v in curve.values()], marker="o")
+        if log_x and key == "point_count_sweep":
+            ax.set_xscale("log", base=2)
+        elif log_x:
+            ax.set_xscale("symlog", linthresh=0.01)
+        ax.set_xlabel(_SHORT[key], fontsize=8)
+        ax.set_ylim(0, 102)
+        ax.grid(alpha=0.3)
+    axes[0][0].set_ylabel("accuracy (%)")
+    fig.suptitle(f"{metrics['backbone']['name']}: accuracy under scanner imperfections (uniform random poses)",
+                 fontsize=9)
+    return save_figure(fig, path)
+
+
+def perturbation_sections(metrics: dict, out_dir: str | os.PathLike) -> list[str]:
+    """Report lines for the stray-point and point-count curves, and their plot beside the noise curve."""
+    name = metrics["backbone"]["name"]
+    text = []
+    if metrics.get("outlier_sweep"):
+        text += ["## Accuracy under stray points (uniform random poses)", "",
+                 "A share of each cloud's points replaced by points drawn uniformly in its bounding box (normals "
+                 "pointing anywhere), the cloud then centred and scaled again; no clean-up.", "",
+                 _sweep_table({name: {"outlier_sweep": {f"{100 * float(p):g}%": v
+                                                        for p, v in metrics["outlier_sweep"].items()}}},
+                              "outlier_sweep", ""), ""]
+    if metrics.get("point_count_sweep") is not None and "point_count_range" in metrics:
+        rng = metrics["point_count_range"]
+        text += ["## Accuracy against point count (uniform random poses)", "",
+                 f"Each cloud cut to a random subset of its points, centred and scaled again; {rng['note']}.", ""]
+        if metrics["point_count_sweep"]:
+            text += [_sweep_table({name: metrics}, "point_count_sweep", "N="), ""]
+    png = plot_perturbations(metrics, Path(out_dir) / "perturbations.png")
+    if png is not None:
+        text += ["![accuracy under scanner imperfections](perturbations.png)", ""]
+    return text
 
 
 def comparison_report(runs: dict[str, dict], out_dir: str | os.PathLike, *, title: str, preamble: str = "") -> Path:

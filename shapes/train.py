@@ -180,6 +180,9 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
         head=HeadRecord(s.head_hidden, s.dropout), train={k: v for k, v in asdict(s).items() if k != "extra"},
         versions=versions(), extra=dict(s.extra))
     twin_of = torch.as_tensor(checkpoint_meta.twin_index(), device=device)  # (C,)
+    # a handed class whose twin is not in the catalog has a mirror image that is no class: never mirrored
+    no_twin = set((meta.get("twin_check") or {}).get("unpaired", []))
+    mirrorable = torch.tensor([c not in no_twin for c in checkpoint_meta.classes], device=device)  # (C,)
     if state is not None:
         check_resumable(state, asdict(s), backbone, world, len(x_train))
 
@@ -286,7 +289,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
                 n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
                 if s.mirror > 0:
-                    chosen = (torch.rand(len(batch), generator=gen)[mine] < s.mirror).to(device)  # (b,)
+                    chosen = (torch.rand(len(batch), generator=gen)[mine] < s.mirror).to(device) & mirrorable[y]
                     n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
                     x, y = reflect_to_twins(x, y, twin_of, chosen)
                 if s.jitter > 0:

@@ -14,7 +14,8 @@ def tiny_surface_data(tmp_path_factory):
 
     root = tmp_path_factory.mktemp("tiny_surface")
     assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64", "sample.mode=surface",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1",
+                 "sample.twins=declared"]) == 0
     return root / "data"
 
 

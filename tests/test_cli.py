@@ -10,7 +10,8 @@ from shapes.cli import main
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "demo_meshes"
-TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1"]
+TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1",
+               "sample.twins=declared"]  # the demo's declared map; checking it is tested in test_parts_check_twins
 
 
 def one_error_line(capsys) -> str:
@@ -151,4 +152,16 @@ def test_demo_on_a_tiny_setting(tmp_path, monkeypatch, capsys):
     assert "| distance | E3 |" in report and "| plain | none |" in report
     assert "| vector_gate | SE3 |" in report and "| harmonic_attention | SE3 |" in report
     assert "plain 0.1 min" in report and "distance 1 epoch)" not in report and "distance 1 epoch," in report
-    assert "demo report:" in capsys.readouterr().out
+    captured = capsys.readouterr()
+    assert "demo report:" in captured.out
+    # sample.twins=auto (the default) checks the demo catalog's declared map against the meshes, every instance
+    assert "[demo] mirror twins: declared in the catalog, checked against the geometry" in captured.out
+    assert captured.out.count("[demo]   mirror twins found: ") == 4 and "warning:" not in captured.err
+    check = json.loads((tmp_path / "demo" / "data" / "meta.json").read_text())["twin_check"]
+    assert check["checked"] and check["warnings"] == [] and check["unpaired"] == []
+    # common practice: left-hand studs, springs and helical gears and a left bracket mirror the right-hand
+    # ones, and turned parts are achiral; catalog.json declares so
+    declared = {c["name"]: c["twin"] for c in json.loads((DEMO / "catalog.json").read_text())["classes"]}
+    assert {a: b for a, b in check["pairs"]} | {b: a for a, b in check["pairs"]} == \
+        {c: t for c, t in declared.items() if c != t}
+    assert sorted(check["achiral"]) == sorted(c for c, t in declared.items() if c == t)

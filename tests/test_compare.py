@@ -87,10 +87,25 @@ def test_a_sweep_of_two_backbones_and_two_seeds_writes_the_table_and_the_plots(s
         acc_any = [100 * m["regimes"]["any"]["accuracy"] for m in members]
         cell = f"{statistics.fmean(acc_any):.1f} ± {statistics.stdev(acc_any):.1f}%"
         assert cell in row and row.count("±") >= 8
+    # the train x test pose matrix: one row per training regime (all cad here), pooled over the two seeds
+    matrix = result["pose_matrix"]
+    assert sorted(matrix) == ["distance", "plain"] and "## Train × test poses" in table
+    for label, rows in matrix.items():
+        assert list(rows) == ["cad"] and rows["cad"]["runs"] == 2
+        members = [read_metrics(Path(r)) for r in result["groups"][label]["runs"]]
+        for regime in result["regimes"]:
+            acc = [m["regimes"][regime]["accuracy"] for m in members]
+            # reference: numpy's mean and sample standard deviation
+            assert rows["cad"][regime]["mean"] == pytest.approx(np.mean(acc))
+            assert rows["cad"][regime]["sd"] == pytest.approx(np.std(acc, ddof=1))
+    # stray points and visible share (the test split holds scans) are overlaid; 96-point clouds give no
+    # count of the point-count curve (it starts at 128), so that plot is left out
+    assert (out / "compare_outliers.png").is_file() and (out / "compare_visible.png").is_file()
+    assert not (out / "compare_points.png").exists() and "compare_points.png" not in table
     # the plots are pictures with something drawn on them
     import matplotlib.image
 
-    for png in ("compare_angle.png", "compare_noise.png"):
+    for png in ("compare_angle.png", "compare_noise.png", "compare_outliers.png", "compare_visible.png"):
         pixels = matplotlib.image.imread(out / png)
         assert pixels.shape[0] > 100 and pixels.std() > 0.05
 

@@ -74,8 +74,8 @@ def _pairs():
     for section, options in code.items():
         for key, value in cfg[section].items():
             yield f"{section}.{key}", value, options.get(key, KeyError)
-    # the demo samples with the sample section's mode, scan share and normals
-    for key in ("mode", "scan_fraction", "normals"):
+    # the demo samples with the sample section's mode, scan share, normals and twin map
+    for key in ("mode", "scan_fraction", "normals", "twins"):
         yield f"sample.{key} (demo)", cfg["sample"][key], code["demo"][key]
 
 

@@ -42,7 +42,8 @@ def tiny(tmp_path_factory):
     data = root / "data"
     assert main(["sample", f"meshes={DEMO}", f"data={data}", "sample.points=64",
                  "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1",
-                 "sample.mode=surface", "sample.normals=mesh"]) == 0  # full surfaces with the mesh's normals
+                 "sample.mode=surface", "sample.normals=mesh",  # full surfaces with the mesh's normals
+                 "sample.twins=declared"]) == 0
     torch.manual_seed(0)  # building the backbone draws its weights: seeded, so the run is the same every time
     e3 = train_classifier(build_backbone("distance", hidden=16, k=8, layers=2), data, root / "e3",
                           TrainSettings(epochs=15, batch_size=16, threads=1))

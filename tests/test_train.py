@@ -31,7 +31,7 @@ def test_lr_factor_is_a_cosine_after_warmup(progress):
 def tiny_data(tmp_path_factory):
     root = tmp_path_factory.mktemp("train")
     assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1"]) == 0
+                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1", "sample.twins=declared"]) == 0
     return root / "data"
 
 

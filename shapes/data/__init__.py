@@ -32,6 +32,7 @@ from shapes.data._read import (
     read_mesh,
     read_scan,
 )
+from shapes.data._twins import TWIN_MODES, resolve_twins, twin_lines, twin_printer
 from shapes.data._scanfile import (
     MAX_FILE_BYTES,
     MAX_FILE_POINTS,
@@ -74,6 +75,10 @@ __all__ = [
     "Catalog",
     "Instance",
     "read_catalog",
+    "resolve_twins",
+    "twin_lines",
+    "twin_printer",
+    "TWIN_MODES",
     "sample_surface",
     "farthest_point_subsample",
     "normalise",

@@ -16,6 +16,7 @@ import math
 import os
 import sys
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 import torch
@@ -26,10 +27,11 @@ import shapes
 from shapes import _checks as check
 from shapes._atomic import atomic_dir, write_json
 from shapes.errors import ConfigError, DataError
-from shapes.data._catalog import read_catalog
+from shapes.data._catalog import _check_twins, read_catalog
 from shapes.data._normals import estimate_normals
 from shapes.data._scanfile import orient_toward
 from shapes.data._read import read_mesh
+from shapes.data._twins import TWIN_MODES, resolve_twins, twin_lines
 from shapes.data._sample import farthest_point_subsample, normalise, sample_surface
 from shapes.data._clean import CleanSettings, clean_points
 from shapes.data._scan import ScannerSettings, scan_part, scan_view
@@ -75,7 +77,7 @@ _FORMAT = 1
 
 
 def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals="mesh",
-                    normals_k=NORMALS_K, normals_points=NORMALS_POINTS) -> dict:
+                    normals_k=NORMALS_K, normals_points=NORMALS_POINTS, twins="auto") -> dict:
     points = check.integer("points", points, low=2)
     oversample = check.integer("oversample", oversample, low=1)
     seed = check.integer("seed", seed, low=0)
@@ -96,9 +98,10 @@ def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed
     if normals == "estimated" and normals_k >= points:
         raise ConfigError(f"normals_k should be below points = {points}, got {normals_k} instead.")
     normals_points = check.integer("normals_points", normals_points, low=points)
+    twins = check.choice("twins", twins, TWIN_MODES)
     return dict(points=points, copies=copies, mode=mode, scan_fraction=float(scan_fraction),
                 oversample=oversample, noise=float(noise), seed=seed, normals=normals, normals_k=normals_k,
-                normals_points=normals_points)
+                normals_points=normals_points, twins=twins)
 
 
 def _check_out_dir(out_dir: Path, root: Path) -> None:
@@ -265,6 +268,8 @@ def build_dataset(
     split_fractions=(0.6, 0.2, 0.2),
     seed: int = 0,
     progress: bool = False,
+    twins: str = "auto",
+    say: Callable[[str], None] | None = None,
 ) -> Path:
     """Sample every instance of a catalog into train/val/test point-cloud shards.
 
@@ -310,6 +315,15 @@ def build_dataset(
         ``SeedSequence([seed, i, k])``, so it does not depend on the order of work.
     progress : bool
         Show a progress bar on a terminal.
+    twins : {"auto", "derived", "declared"}
+        Where the mirror-twin map comes from (:func:`resolve_twins`), decided once the options, the
+        output folder and the split are checked: ``"auto"`` (default) derives it from the geometry when
+        the catalog declares none and checks a declared one; ``"derived"`` always takes the geometry's;
+        ``"declared"`` takes the catalog's unchecked. The record, less its clock reading, is stored as
+        ``meta["twin_check"]``.
+    say : callable, optional
+        Called with each line about the twin map (:func:`twin_lines`; disagreements start with
+        ``warning:``) before sampling starts; None says nothing.
 
     Returns
     -------
@@ -321,11 +335,16 @@ def build_dataset(
         Bad catalog, a bad mesh (nothing is written: no out_dir, no temp folder), bad option.
     """
     s = _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals, normals_k,
-                        normals_points)
+                        normals_points, twins)
     catalog = read_catalog(catalog_dir)
     out_dir = Path(out_dir).expanduser().resolve()
     _check_out_dir(out_dir, catalog.root)
     split_of = split_groups(catalog, split_fractions, seed=np.random.SeedSequence([s["seed"], 0x5117]))
+    record = resolve_twins(catalog, s["twins"])
+    for line in twin_lines(record) if say is not None else ():
+        say(line)
+    twin_map = _check_twins(dict(record.pop("map")), catalog.classes, catalog.root, "the decided twin map")
+    twin_check = {k: v for k, v in record.items() if k != "seconds"}  # the clock reading stays out of meta.json
     label = {c: k for k, c in enumerate(catalog.classes)}
 
     shards = {sp: {key: [] for key in SHARD_KEYS + tuple(OPTIONAL_KEYS)} for sp in SPLITS}
@@ -363,8 +382,9 @@ def build_dataset(
     meta = {
         "format": _FORMAT,
         "classes": list(catalog.classes),
-        "twins": dict(catalog.twins),
-        "handed": dict(catalog.handed),
+        "twins": twin_map,
+        "handed": {c: twin_map[c] != c for c in catalog.classes},
+        "twin_check": twin_check,
         "instances": [
             {"class": inst.cls, "file": _relative(inst.file, catalog.root), "group": inst.group,
              "split": split_of[inst.group]}

@@ -57,6 +57,9 @@ class Catalog:
         Class names; a label is an index into this tuple.
     twins : dict str -> str
         Each class's mirror twin; the class itself when it is achiral.
+    twins_declared : bool
+        Whether the folder states its mirror twins at all (``twins.json``, or ``twin``/``handed``
+        fields in ``catalog.json``); when not, every class reads as its own twin.
     handed : dict str -> bool
         True when the class differs from its mirror image (its twin is another class).
     instances : tuple of Instance
@@ -75,6 +78,7 @@ class Catalog:
     descriptions: dict[str, str] = field(default_factory=dict)
     title: str = ""
     units: str = ""
+    twins_declared: bool = False  # the folder states its twins (twins.json, or twin/handed fields in catalog.json)
 
     def of_class(self, cls: str) -> tuple[Instance, ...]:
         """Instances of one class."""
@@ -183,6 +187,7 @@ def _from_json(folder: Path) -> Catalog:
         descriptions=descriptions,
         title=str(doc.get("title", "")),
         units=str(doc.get("units", "")),
+        twins_declared=bool(twins or handed_given),
     )
 
 
@@ -223,6 +228,7 @@ def _from_folders(folder: Path) -> Catalog:
         twins=twins,
         handed={c: twins[c] != c for c in classes},
         instances=tuple(instances),
+        twins_declared=twins_path.exists(),
     )
 
 
