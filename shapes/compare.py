@@ -19,6 +19,7 @@ from pathlib import Path
 from shapes import _checks as check
 from shapes._atomic import write_json
 from shapes.errors import ConfigError, DataError
+from shapes.data import read_meta
 from shapes.geometry import POSE_REGIMES, check_regime
 from shapes.run import CHECKPOINT, HISTORY, METRICS, read_metrics
 from shapes.report import CURVES, REGIME_NOTES, pyplot, save_figure, visible_curve, write_report
@@ -101,10 +102,22 @@ def _check_same_catalog(runs: list[dict]) -> None:
                             "compare runs trained on one catalog.")
 
 
+def _data_recipe(data) -> object:
+    """What a run's dataset stands for in its configuration: the catalog and the sampler's settings
+    (``meta.json``), so that datasets drawn from one recipe under different seeds (as each seed of
+    ``shapes demo`` draws its own) pool as seeds of one configuration; the folder's path where its
+    ``meta.json`` cannot be read (moved or deleted since)."""
+    try:
+        meta = read_meta(data)
+    except (DataError, TypeError, OSError):
+        return data
+    return {"catalog": meta.get("catalog"), "sampler": meta.get("sampler")}
+
+
 def _config_key(m: dict) -> dict:
     train = {k: v for k, v in (m.get("train") or {}).items() if k not in _NOT_CONFIG}
     return {"backbone": m["backbone"]["name"], "options": m["backbone"].get("options", {}), "train": train,
-            "data": m.get("data")}
+            "data": _data_recipe(m.get("data"))}
 
 
 def group_runs(runs: list[dict]) -> dict[str, list[dict]]:
@@ -129,8 +142,12 @@ def group_runs(runs: list[dict]) -> dict[str, list[dict]]:
                     if any(r[section].get(k) != v for r in rivals):
                         differ.append(f"{k}={v}")
             if any(r["data"] != key["data"] for r in rivals):
-                differ.append(f"data={Path(str(key['data'])).name}")
+                differ.append(f"data={Path(str(members[0].get('data'))).name}")
             label += " (" + ", ".join(differ[:4]) + ")" if differ else f" #{len(labels) + 1}"
+        base, n = label, 1
+        while label in labels:  # two configurations told apart by something the label leaves out
+            n += 1
+            label = f"{base} #{n}"
         labels[label] = members
     return labels
 

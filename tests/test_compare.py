@@ -120,6 +120,32 @@ def test_one_run_folder_and_a_mixed_list_compare(sweep, tmp_path):
     assert result["groups"]["plain"]["stats"]["accuracy_any"]["n"] == 2
 
 
+def test_seeds_that_drew_their_own_data_pool_and_no_run_is_dropped(sweep, tmp_path):
+    # `shapes demo seed=S` samples its own dataset per seed: datasets of one recipe (catalog and sampler
+    # settings in meta.json) are seeds of one configuration; a dataset of another recipe is another
+    # configuration, and two configurations of one backbone never share a label (none may vanish).
+    data = json.loads((sweep / "0-distance" / "metrics.json").read_text())["data"]
+    same, other = tmp_path / "same_recipe", tmp_path / "other_recipe"
+    shutil.copytree(data, same)
+    shutil.copytree(data, other)
+    meta = json.loads((other / "meta.json").read_text())
+    meta["sampler"]["points"] = meta["sampler"]["points"] * 2
+    (other / "meta.json").write_text(json.dumps(meta))
+
+    def to(folder):
+        return lambda metrics: metrics.__setitem__("data", str(folder))
+
+    runs = [_copy_run(sweep / "0-distance", tmp_path / "a"), _copy_run(sweep / "1-distance", tmp_path / "b", to(same)),
+            _copy_run(sweep / "0-distance", tmp_path / "c", to(other)), _copy_run(sweep / "1-distance", tmp_path / "d", to(other))]
+    out = tmp_path / "out"
+    assert main(["compare", *map(str, runs), f"compare.out={out}"]) == 0
+    groups = json.loads((out / "compare.json").read_text())["groups"]
+    assert sorted(len(g["runs"]) for g in groups.values()) == [2, 2]
+    assert sum(len(g["runs"]) for g in groups.values()) == len(runs)
+    pooled = next(g for g in groups.values() if str(tmp_path / "b") in g["runs"])
+    assert str(tmp_path / "a") in pooled["runs"]
+
+
 def _copy_run(run: Path, dest: Path, edit=None) -> Path:
     shutil.copytree(run, dest)
     if edit is not None:
