@@ -147,11 +147,12 @@ def test_demo_budget_for_an_unknown_backbone_is_refused(tmp_path, monkeypatch, c
 def test_demo_on_a_tiny_setting(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     assert main(["demo", f"meshes={DEMO}", f"demo.out={tmp_path / 'demo'}", "demo.points=96", "demo.epochs=1",
-                 "demo.copies={train: 1, val: 1, test: 1}", "~demo.minutes", "+demo.minutes={plain: 0.1}"]) == 0
+                 "demo.copies={train: 1, val: 1, test: 1}", "~demo.minutes", "+demo.minutes={plain: 0.1, vector_gate: null}"]) == 0
     report = (tmp_path / "demo" / "report.md").read_text()
     assert "| distance | E3 |" in report and "| plain | none |" in report
     assert "| vector_gate | SE3 |" in report and "| harmonic_attention | SE3 |" in report
     assert "plain 0.1 min" in report and "distance 1 epoch)" not in report and "distance 1 epoch," in report
+    assert "vector_gate 1 epoch," in report  # null: no wall-time budget, demo.epochs alone
     captured = capsys.readouterr()
     assert "demo report:" in captured.out
     # sample.twins=auto (the default) checks the demo catalog's declared map against the meshes, every instance
