@@ -80,7 +80,7 @@ def run_demo(meshes: str | os.PathLike, out: str | os.PathLike, backbones: dict[
                 + ", ".join(f"{c} ↔ {meta['twins'][c]}" for c in handed if c < meta["twins"][c])
                 + f"). Each backbone trained on clouds of {points} points in the CAD frame (cad poses; "
                 + (f"{mirror:.0%} of them mirrored and labelled as their twin; " if mirror else "")
-                + ", ".join(f"{n} {minutes[n]:g} min" if n in minutes else f"{n} {epochs} epoch{'s' * (epochs != 1)}" for n in runs)
+                + ", ".join(f"{n} {minutes[n]:g} min" if minutes.get(n) else f"{n} {epochs} epoch{'s' * (epochs != 1)}" for n in runs)
                 + f") and was tested on held-out part instances. Whole demo: {total:.1f} min.")
     return comparison_report(runs, out, title="shapes demo: part classification under random poses and mirror images",
                              preamble=preamble)
