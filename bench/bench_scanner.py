@@ -39,7 +39,7 @@ sys.path.insert(0, str(ROOT))
 
 from shapes._atomic import write_json  # noqa: E402
 from shapes.data import ScannerSettings, ray_backend, read_mesh, scan_part, scan_view  # noqa: E402
-from shapes.data._scan import _first_hits, _part_sphere, _pixel_rays  # noqa: E402  (the scanner's own rays)
+from shapes.data._scan_rays import _first_hits, _part_sphere, _pixel_rays  # noqa: E402  (the scanner's own rays)
 
 OUT = Path(__file__).resolve().parent / "results" / "bench_scanner.json"
 MESH = ROOT / "demo_meshes" / "helical_gear_rh"

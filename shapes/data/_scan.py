@@ -1,6 +1,6 @@
 """A virtual range scanner: what one camera sees of a part, as a point cloud.
 
-Two scanners live here:
+Two scanners, both offered by this module:
 
 - :func:`scan_view`, the simple one: an orthographic grid of parallel rays cast at the mesh from
   one direction; only each ray's first hit is kept, so the far side of the part is missing just as
@@ -10,8 +10,8 @@ Two scanners live here:
   dropout at grazing angles, stray points, mixed pixels along silhouettes and an optional table
   under the part.
 
-Ray casting goes through ``mesh.ray``, which is trimesh's Embree intersector when ``embreex`` is
-installed (about a hundred times faster than trimesh's pure-Python fallback, which also needs rtree).
+The cameras and rays are in ``_scan_rays`` (with :func:`scan_view`), what the sensor makes of
+them in ``_scan_sensor``; this module holds the settings and merges the views of :func:`scan_part`.
 """
 
 from __future__ import annotations
@@ -24,9 +24,11 @@ import numpy as np
 import trimesh
 
 from shapes import _checks
-from shapes.errors import ConfigError, InputError, MeshError, ShapesError
+from shapes.errors import ConfigError, InputError, MeshError
 from shapes.seeding import rng
-from shapes.data._sample import _check_count, sample_surface
+from shapes.data._sample import _check_count
+from shapes.data._scan_rays import _frame, _part_sphere, _placed_directions, random_direction, ray_backend, scan_view
+from shapes.data._scan_sensor import _OUTLIER, SCAN_LABELS, _scan_one, _visible_share
 
 __all__ = [
     "scan_view",
@@ -39,160 +41,9 @@ __all__ = [
     "CAMERA_PLACEMENTS",
 ]
 
-
-def random_direction(seed=None) -> np.ndarray:
-    """A unit vector uniform on the sphere (a normalised Gaussian draw).
-
-    Returns
-    -------
-    direction : (3,) float64
-    """
-    gen = rng(seed)
-    while True:
-        v = gen.standard_normal(3)
-        norm = float(np.linalg.norm(v))
-        if norm > 1e-12:  # essentially never loops; guards the zero vector
-            return v / norm
-
-
-def ray_backend(mesh: trimesh.Trimesh) -> str:
-    """Name the ray intersector trimesh uses for ``mesh``: ``"embree"`` or ``"python"``."""
-    return "embree" if "embree" in type(mesh.ray).__module__ else "python"
-
-
-def _frame(direction: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Two unit vectors spanning the image plane orthogonal to ``direction``."""
-    helper = np.eye(3)[int(np.argmin(np.abs(direction)))]
-    u = np.cross(direction, helper)
-    u /= np.linalg.norm(u)
-    return u, np.cross(direction, u)
-
-
-def _cast(mesh, direction, resolution, gen):
-    """Cast a resolution x resolution grid; return hit points, their face ids."""
-    centre = np.asarray(mesh.bounds, dtype=np.float64).mean(axis=0)
-    radius = float(np.linalg.norm(np.asarray(mesh.vertices) - centre, axis=1).max())
-    u, w = _frame(direction)
-    # a random in-plane turn and sub-pixel shift of the grid, so two scans from the same
-    # direction with different seeds see different surface points
-    angle = gen.uniform(0.0, 2.0 * math.pi)
-    u, w = math.cos(angle) * u + math.sin(angle) * w, -math.sin(angle) * u + math.cos(angle) * w
-    pitch = 2.0 * radius / resolution
-    ticks = -radius + pitch * (np.arange(resolution) + 0.5)  # (R,)
-    offset = (gen.random(2) - 0.5) * pitch
-    a, b = np.meshgrid(ticks + offset[0], ticks + offset[1], indexing="ij")
-    plane = a.reshape(-1, 1) * u + b.reshape(-1, 1) * w  # (R*R, 3)
-    origins = centre + plane - 2.0 * radius * direction
-    directions = np.broadcast_to(direction, origins.shape)
-    try:
-        locations, rays, faces = mesh.ray.intersects_location(origins, directions, multiple_hits=False)
-    except ImportError as exc:  # without embreex, trimesh's fallback needs rtree
-        raise ShapesError(
-            f"ray casting needs the embreex package (or rtree for trimesh's slow fallback): {exc}"
-        ) from exc
-    order = np.argsort(np.asarray(rays), kind="stable")  # ray order, so a seed fixes the result
-    locations = np.asarray(locations, dtype=np.float64)[order]
-    return locations, np.asarray(faces, dtype=np.int64)[order], radius
-
-
-def scan_view(
-    mesh: trimesh.Trimesh,
-    count: int,
-    view_dir=None,
-    seed=None,
-    resolution: int | None = None,
-    noise: float = 0.0,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Simulate a single-view range scan of a mesh.
-
-    Parallel rays travel along ``view_dir`` from a plane in front of the mesh's bounding
-    sphere; each ray keeps its first hit only (the visible surface). ``count`` points are
-    then drawn without replacement from the hits. If there are fewer hits than ``count``,
-    the grid is refined once (to about twice the needed rays, from the measured hit
-    fraction); if still too few, points are drawn **with replacement**, so some repeat.
-
-    Parameters
-    ----------
-    mesh : trimesh.Trimesh
-    count : int
-        Points in the returned cloud.
-    view_dir : (3,) float, optional
-        Direction the camera looks (the rays travel along it; it need not be unit length).
-        Default: uniform on the sphere, drawn from ``seed``.
-    seed : None, int or numpy.random.Generator
-    resolution : int, optional
-        Rays per side of the square grid. Default ``max(32, ceil(sqrt(8 * count)))``: the grid
-        covers the bounding sphere's disc, and 8 rays per point leave room for thin parts
-        that fill only a small part of the view.
-    noise : float
-        Standard deviation of Gaussian depth noise along each ray, as a fraction of the RMS
-        radius of the noise-free cloud about its centroid (so after :func:`normalise` it is
-        roughly the noise in normalised units); ``0.01`` is a coarse hand-held scanner on a
-        part the size of the view.
-
-    Returns
-    -------
-    points : (count, 3) float64
-    normals : (count, 3) float64
-        Unit normals of the faces hit (they face the camera on a closed mesh: ``n · view_dir < 0``).
-
-    Raises
-    ------
-    MeshError
-        No ray hit the mesh (e.g. a flat sheet seen exactly edge-on).
-    """
-    count = _check_count(count)
-    if not (isinstance(noise, (int, float, np.floating)) and np.isfinite(noise) and noise >= 0):
-        raise InputError(f"noise should be a finite number >= 0, got {noise!r} instead.")
-    gen = rng(seed)
-    if view_dir is None:
-        direction = random_direction(gen)
-    else:
-        direction = np.asarray(view_dir, dtype=np.float64).reshape(-1)
-        norm = float(np.linalg.norm(direction)) if direction.shape == (3,) else 0.0
-        if direction.shape != (3,) or not np.isfinite(norm) or norm == 0.0:
-            raise InputError(
-                f"view_dir should be a non-zero finite vector of shape (3,), got {np.asarray(view_dir).tolist()} instead."
-            )
-        direction = direction / norm
-    if resolution is None:
-        resolution = max(32, math.ceil(math.sqrt(8 * count)))
-    resolution = _check_count(resolution, "resolution")
-
-    hits, faces, radius = _cast(mesh, direction, resolution, gen)
-    if 0 < len(hits) < count:
-        # hit fraction measured on the first grid tells how many rays give 2x the need
-        fraction = len(hits) / resolution**2
-        resolution = math.ceil(math.sqrt(2.0 * count / fraction))
-        hits, faces, radius = _cast(mesh, direction, resolution, gen)
-    if len(hits) == 0:
-        raise MeshError(
-            f"virtual scan from direction {np.round(direction, 4).tolist()} hit nothing "
-            f"({resolution}x{resolution} rays); the mesh shows no area to this view."
-        )
-    pick = gen.choice(len(hits), size=count, replace=len(hits) < count)
-    points, faces = hits[pick], faces[pick]
-    if noise > 0:
-        rms = float(np.sqrt(np.mean(np.sum((hits - hits.mean(axis=0)) ** 2, axis=1))))
-        sigma = noise * (rms if rms > 0 else radius)
-        points = points + gen.normal(0.0, sigma, size=(count, 1)) * direction
-    normals = np.asarray(mesh.face_normals, dtype=np.float64)[faces]
-    return points, normals
-
-
-# ====================================================================== the realistic scanner
-
-SCAN_LABELS = ("surface", "support", "mixed", "outlier")
-"""What each point of a :class:`ScanResult` is; ``labels`` holds indices into this tuple."""
-_SURFACE, _SUPPORT, _MIXED, _OUTLIER = range(4)
-
 CAMERA_PLACEMENTS = ("sphere", "upright")
 """How :func:`scan_part` places its cameras (see :class:`ScannerSettings`)."""
 
-# A pixel is on a depth edge when a 4-neighbour lies more than this many pixel footprints behind
-# it: a surface would have to be steeper than atan(10) = 84.3 degrees to the line of sight to give
-# such a step between neighbouring pixels, beyond the default grazing cut-off (common practice).
-_EDGE_STEPS = 10.0
 _MAX_RESOLUTION = 2048  # the refined grid never exceeds this many pixels per side (memory bound)
 _RAYS_PER_POINT = 8  # default grid: about this many rays inside the part's outline per wanted point
 
@@ -383,38 +234,6 @@ class ScanResult(NamedTuple):
     visible_share: float
 
 
-def _random_rotation(gen: np.random.Generator) -> np.ndarray:
-    """A rotation matrix uniform on SO(3): a unit quaternion from a normalised 4-D Gaussian draw
-    (uniform on the 3-sphere, hence a uniform rotation; Shoemake 1992, Graphics Gems III)."""
-    while True:
-        q = gen.standard_normal(4)
-        norm = float(np.linalg.norm(q))
-        if norm > 1e-12:
-            break
-    w, x, y, z = q / norm
-    return np.array([
-        [1 - 2 * (y * y + z * z), 2 * (x * y - w * z), 2 * (x * z + w * y)],
-        [2 * (x * y + w * z), 1 - 2 * (x * x + z * z), 2 * (y * z - w * x)],
-        [2 * (x * z - w * y), 2 * (y * z + w * x), 1 - 2 * (x * x + y * y)],
-    ])
-
-
-def _placed_directions(settings: ScannerSettings, n_views: int, gen) -> np.ndarray:
-    """Unit vectors from the part's centre toward each camera, (V, 3)."""
-    if settings.placement == "upright":
-        elevation = math.radians(settings.elevation)
-        start = gen.uniform(0.0, 2.0 * math.pi)
-        azimuth = start + 2.0 * math.pi * np.arange(n_views) / n_views
-        return np.stack([math.cos(elevation) * np.cos(azimuth), math.cos(elevation) * np.sin(azimuth),
-                         np.full(n_views, math.sin(elevation))], axis=1)
-    turn = 2.0 * math.pi * np.arange(n_views) / n_views
-    if n_views == 3:  # a turntable: 120 degrees apart on a great circle
-        pattern = np.stack([np.cos(turn), np.sin(turn), np.zeros(3)], axis=1)
-    else:  # one view, or the part turned over
-        pattern = np.stack([np.zeros(n_views), np.zeros(n_views), np.cos(turn)], axis=1)
-    return pattern @ _random_rotation(gen).T
-
-
 def _check_views(views, settings: ScannerSettings):
     """``views`` as an int (how many placed cameras) or a (V, 3) array of unit directions."""
     if views is None:
@@ -442,150 +261,6 @@ def _check_views(views, settings: ScannerSettings):
             f"got {np.round(array[bad], 4).tolist()} instead."
         )
     return array
-
-
-def _part_sphere(mesh) -> tuple[np.ndarray, float]:
-    """Centre of the bounding box and the bounding radius (largest vertex distance from it)."""
-    vertices = np.asarray(mesh.vertices, dtype=np.float64)
-    centre = vertices.min(axis=0) / 2.0 + vertices.max(axis=0) / 2.0
-    return centre, float(np.linalg.norm(vertices - centre, axis=1).max())
-
-
-def _pixel_rays(forward: np.ndarray, resolution: int, half_tan: float, gen) -> np.ndarray:
-    """Unit directions through the centres of a resolution x resolution image, row-major.
-
-    The image is turned about the optical axis by a random angle and shifted by a random sub-pixel
-    offset, so two scans from the same camera with different seeds see different surface points.
-    """
-    u, w = _frame(forward)
-    angle = gen.uniform(0.0, 2.0 * math.pi)
-    u, w = math.cos(angle) * u + math.sin(angle) * w, -math.sin(angle) * u + math.cos(angle) * w
-    pitch = 2.0 * half_tan / resolution
-    ticks = -half_tan + pitch * (np.arange(resolution) + 0.5)
-    offset = (gen.random(2) - 0.5) * pitch
-    a, b = np.meshgrid(ticks + offset[0], ticks + offset[1], indexing="ij")
-    rays = forward + a.reshape(-1, 1) * u + b.reshape(-1, 1) * w
-    return rays / np.linalg.norm(rays, axis=1, keepdims=True)
-
-
-def _first_hits(mesh, origin: np.ndarray, rays: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """First face each ray from ``origin`` hits (-1: none) and its range along the ray (inf: none).
-
-    Embree finds the face (in float32); the range is then the exact float64 intersection of the ray
-    with that face's plane, so a noise-free point lies on its face to float64 round-off.
-    """
-    origins = np.broadcast_to(origin, rays.shape)
-    try:
-        face = np.asarray(mesh.ray.intersects_first(origins, rays), dtype=np.int64)
-    except ImportError as exc:  # without embreex, trimesh's fallback needs rtree
-        raise ShapesError(
-            f"ray casting needs the embreex package (or rtree for trimesh's slow fallback): {exc}"
-        ) from exc
-    ranges = np.full(len(rays), np.inf)
-    hit = np.flatnonzero(face >= 0)
-    if len(hit):
-        normal = np.asarray(mesh.face_normals, dtype=np.float64)[face[hit]]
-        corner = np.asarray(mesh.triangles[:, 0], dtype=np.float64)[face[hit]]
-        across = np.einsum("ij,ij->i", normal, rays[hit])
-        ok = np.abs(across) > 1e-12  # a ray in the face's own plane has no single crossing
-        t = np.einsum("ij,ij->i", normal, corner - origin)[ok] / across[ok]
-        ranges[hit[ok]] = np.maximum(t, 0.0)
-        face[hit[~ok]] = -1
-    return face, ranges
-
-
-def _scan_one(mesh, camera, forward, resolution, settings, geometry, gen) -> dict:
-    """Every return of one camera before sampling: points, normals, labels, faces, ranges, rays."""
-    centre, radius, watertight, table_z = geometry
-    half_tan = math.tan(math.radians(settings.field_of_view) / 2.0)
-    rays = _pixel_rays(forward, resolution, half_tan, gen)
-    n = len(rays)
-    # only rays inside the bounding sphere's cone can hit the part
-    reach = math.sqrt(max(1.0 - (radius / np.linalg.norm(centre - camera)) ** 2, 0.0))
-    cone = np.flatnonzero(rays @ forward >= reach - 1e-9)
-    face = np.full(n, -1, dtype=np.int64)
-    depth = np.full(n, np.inf)
-    face[cone], depth[cone] = _first_hits(mesh, camera, rays[cone])
-    label = np.full(n, _SURFACE, dtype=np.int8)
-    if table_z is not None:
-        down = rays[:, 2] < 0
-        t_table = np.full(n, np.inf)
-        t_table[down] = (table_z - camera[2]) / rays[down, 2]
-        spot = camera + t_table[:, None] * rays
-        with np.errstate(invalid="ignore"):
-            off = np.hypot(spot[:, 0] - centre[0], spot[:, 1] - centre[1])
-        on_table = down & (off <= settings.support_extent * radius) & (t_table < depth)
-        depth[on_table] = t_table[on_table]
-        face[on_table] = -1
-        label[on_table] = _SUPPORT
-
-    normals = np.zeros((n, 3))
-    got = np.isfinite(depth)
-    surface = got & (label == _SURFACE)
-    normals[surface] = np.asarray(mesh.face_normals, dtype=np.float64)[face[surface]]
-    normals[got & (label == _SUPPORT)] = (0.0, 0.0, 1.0)
-    facing = np.einsum("ij,ij->i", normals, rays)  # < 0 when the surface faces the camera
-    returns = got.copy()
-    if watertight:  # a closed part's back faces are hit only at silhouette round-off: no return
-        returns &= ~(surface & (facing >= 0))
-
-    # depth edges: a 4-neighbour more than _EDGE_STEPS pixel footprints behind (misses are inf)
-    image = depth.reshape(resolution, resolution)
-    pad = np.pad(image, 1, mode="edge")
-    behind = np.maximum.reduce([pad[:-2, 1:-1], pad[2:, 1:-1], pad[1:-1, :-2], pad[1:-1, 2:]]).reshape(-1)
-    footprint = depth * (2.0 * half_tan / resolution)
-    with np.errstate(invalid="ignore"):
-        edge = returns & (behind - depth > _EDGE_STEPS * footprint)
-    index = np.flatnonzero(returns)
-    draw_mixed, draw_where, draw_drop = gen.random(len(index)), gen.random(len(index)), gen.random(len(index))
-    mixed = edge[index] & (draw_mixed < settings.mixed_pixels)
-    background = np.where(np.isfinite(behind[index]), behind[index], depth[index] + radius)
-    rng_out = depth[index].copy()
-    rng_out[mixed] += draw_where[mixed] * (background[mixed] - rng_out[mixed])
-    lab = label[index].copy()
-    lab[mixed] = _MIXED
-    nrm = normals[index].copy()
-    nrm[mixed] = -rays[index[mixed]]
-    fc = face[index].copy()
-    fc[mixed] = -1
-    # grazing dropout of the ordinary returns: cos(incidence) = |n . ray|
-    incidence = np.degrees(np.arccos(np.clip(np.abs(facing[index]), 0.0, 1.0)))
-    start, cutoff = settings.grazing_start, settings.grazing_cutoff
-    if cutoff > start:
-        p_drop = np.clip((incidence - start) / (cutoff - start), 0.0, 1.0)
-        p_drop[incidence > cutoff] = 1.0
-    else:
-        p_drop = (incidence > cutoff).astype(np.float64)
-    keep = mixed | (draw_drop >= p_drop)
-    if table_z is not None and not settings.keep_support:
-        keep &= lab != _SUPPORT
-    ray = rays[index][keep]
-    r = rng_out[keep]
-    return {"points": camera + r[:, None] * ray, "normals": nrm[keep], "labels": lab[keep],
-            "faces": fc[keep], "ranges": r, "rays": ray, "cast": len(cone)}
-
-
-def _visible_share(mesh, cameras, settings, geometry, gen) -> float:
-    """Share of the area some camera can measure, on points drawn uniformly over the area."""
-    if settings.visibility_samples == 0:
-        return float("nan")
-    _, radius, watertight, _ = geometry
-    points, normals = sample_surface(mesh, settings.visibility_samples, seed=gen)
-    seen = np.zeros(len(points), dtype=bool)
-    least = max(math.cos(math.radians(settings.grazing_cutoff)), 0.0)
-    for camera in cameras:
-        towards = camera - points
-        far = np.linalg.norm(towards, axis=1)
-        cos = np.einsum("ij,ij->i", normals, towards) / far
-        if not watertight:
-            cos = np.abs(cos)
-        ask = np.flatnonzero(~seen & (cos > least))
-        if len(ask) == 0:
-            continue
-        _, ranges = _first_hits(mesh, camera, -towards[ask] / far[ask, None])
-        # the first hit is the point itself (a miss: the ray slipped past an edge at the point)
-        seen[ask] = ranges >= far[ask] - 1e-5 * radius * settings.distance
-    return float(seen.mean())
 
 
 def scan_part(
