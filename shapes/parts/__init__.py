@@ -6,15 +6,14 @@ threads, ISO 4183 V-belt grooves, ISO 273 clearance holes). Handed families take
 (x -> -x) of right. Right-hand helices advance along +z turning counter-clockwise seen from +z.
 """
 
+from shapes.parts._align import Alignment, align_rigid
 from shapes.parts._catalog import (
     CATALOG_TITLE, MAX_PER_CLASS, demo_catalog_spec, describe_instances, summarize_catalog, write_demo_catalog,
 )
 from shapes.parts._families import FAMILIES, HANDED_FAMILIES, build_part
 from shapes.parts._mesh import MIRROR, mirror_mesh
 from shapes.parts._ply import write_ply
-from shapes.parts._twins import (
-    DEFAULT_TOL, Alignment, TwinReport, align_rigid, check_twins, find_mirror_twins, is_chiral, is_rotation_of,
-)
+from shapes.parts._twins import DEFAULT_TOL, TwinReport, check_twins, find_mirror_twins, is_chiral, is_rotation_of
 
 __all__ = [
     "FAMILIES",
