@@ -150,6 +150,14 @@ def test_every_registered_backbone_and_shipped_yaml_is_in_the_table():
     assert {p.stem for p in SHIPPED_BACKBONES.glob("*.yaml")} == set(BACKBONES) | {"d2"}  # d2: not a network
 
 
+def test_a_backbone_file_registers_the_class_of_its_own_name(monkeypatch):
+    # convention: DEVELOPERS.md, "Adding a backbone": the file is the registration, named as the backbone
+    assert all(backbone_class(name).name == name for name in BACKBONES)
+    monkeypatch.setitem(BACKBONES, "plain", "shapes.backbones.distance")  # a file whose class has another name
+    with pytest.raises(ConfigError, match=r"distance\.py should define one Backbone subclass with name = 'plain', found 0"):
+        backbone_class("plain")
+
+
 @pytest.mark.parametrize("name", sorted(BACKBONES) + ["d2"])
 def test_shipped_yaml_agrees_with_the_config_defaults(name):
     # convention: docs/design.md, "Options": the Config dataclass holds every default, the yaml repeats them

@@ -1,33 +1,39 @@
 """Interchangeable backbones and the shared invariant head.
 
 Pick one by name (``backbone=<name>`` on the command line, ``conf/backbone/<name>.yaml``), or
-build it directly: ``build_backbone("distance", cutoff=1.5)``.
+build it directly: ``build_backbone("distance", cutoff=1.5)``. Every public module of this package
+(a file whose name has no leading underscore) is one backbone, named as its file, and holds the
+:class:`Backbone` subclass of that ``name``: adding the file registers it.
 """
 
 from __future__ import annotations
 
 import importlib
+import pkgutil
 
 from shapes.backbones._base import RENAMED, Backbone, Classifier
 from shapes.errors import ConfigError
 
 __all__ = ["Backbone", "Classifier", "BACKBONES", "RENAMED", "backbone_class", "build_backbone", "stored_options"]
 
-# name -> "module:Class"; imported on demand so a light backbone does not pay for a heavy one.
-BACKBONES: dict[str, str] = {
-    "plain": "shapes.backbones.plain:PlainBackbone",
-    "distance": "shapes.backbones.distance:DistanceBackbone",
-    "vector_gate": "shapes.backbones.vector_gate:VectorGateBackbone",
-    "harmonic_attention": "shapes.backbones.harmonic_attention:HarmonicAttentionBackbone",
-}
+# name -> module, one per public file of this package, found without importing any of them: each is
+# imported on demand, so a light backbone does not pay for a heavy one.
+BACKBONES: dict[str, str] = {m.name: f"{__name__}.{m.name}"
+                             for m in sorted(pkgutil.iter_modules(__path__), key=lambda m: m.name)
+                             if not m.name.startswith("_") and not m.ispkg}
 
 
 def backbone_class(name: str) -> type[Backbone]:
     """The class registered under ``name``; a ConfigError naming the valid choices otherwise."""
     if name not in BACKBONES:
         raise ConfigError(f"unknown backbone '{name}'; choose one of: {', '.join(BACKBONES)}.")
-    module, cls = BACKBONES[name].split(":")
-    return getattr(importlib.import_module(module), cls)
+    module = importlib.import_module(BACKBONES[name])
+    found = [c for c in vars(module).values()
+             if isinstance(c, type) and issubclass(c, Backbone) and c.name == name]
+    if len(found) != 1:  # a file of this package that breaks the rule above: the developer's mistake
+        raise ConfigError(f"{module.__file__} should define one Backbone subclass with name = '{name}', "
+                          f"found {len(found)}.")
+    return found[0]
 
 
 def build_backbone(name: str, **options) -> Backbone:
