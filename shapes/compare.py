@@ -22,7 +22,7 @@ from shapes.errors import ConfigError, DataError
 from shapes.data import read_meta
 from shapes.geometry import POSE_REGIMES, check_regime
 from shapes.run import CHECKPOINT, HISTORY, METRICS, read_metrics
-from shapes.report import CURVES, REGIME_NOTES, pyplot, save_figure, visible_curve, write_report
+from shapes.report import CURVES, REGIME_NOTES, curve_scale, pyplot, save_figure, visible_curve, write_report
 
 __all__ = ["find_runs", "load_run_metrics", "group_runs", "summarize", "compare_runs", "pose_matrix"]
 
@@ -211,7 +211,7 @@ def _threads(members: list[dict]) -> str:
     return "/".join(seen)
 
 
-def _plot_curves(groups: dict[str, dict], key: str, xlabel: str, path: Path, log_x: bool = False) -> Path | None:
+def _plot_curves(groups: dict[str, dict], key: str, xlabel: str, path: Path) -> Path | None:
     plt = pyplot()
     curves = {label: g["curves"][key] for label, g in groups.items() if g["curves"].get(key)}
     if not curves:
@@ -228,10 +228,7 @@ def _plot_curves(groups: dict[str, dict], key: str, xlabel: str, path: Path, log
     ax.set_xlabel(xlabel)
     ax.set_ylabel("accuracy (%), mean ± sd over seeds")
     ax.set_ylim(0, 102)
-    if log_x and key == "point_count_sweep":
-        ax.set_xscale("log", base=2)
-    elif log_x:
-        ax.set_xscale("symlog", linthresh=0.01)
+    curve_scale(ax, key)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     return save_figure(fig, path)
@@ -305,7 +302,7 @@ def compare_runs(paths, out: str | os.PathLike, *, poses=None) -> Path:
             "stats": _row_stats(members, regimes),
             "curves": {key: _curve(members, key) for key in CURVES},
         }
-    plots = {name: _plot_curves(groups, key, CURVES[key][0], out / f"compare_{name}.png", log_x=CURVES[key][1])
+    plots = {name: _plot_curves(groups, key, CURVES[key][0], out / f"compare_{name}.png")
              for name, key in _PLOTS.items()}
     result = {"format": 1, "regimes": regimes, "classes": runs[0]["classes"],
               "statistic": "mean ± sample standard deviation (ddof=1) over the runs of one configuration",

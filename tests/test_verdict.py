@@ -18,7 +18,7 @@ from shapes.compare import pose_matrix
 from shapes.data import build_dataset, read_meta
 from shapes.evaluate import (OUTLIER_SHARES, POINT_COUNTS, evaluate_run, perturbation_sweeps, point_counts,
                              with_stray_points)
-from shapes.report import run_report
+from shapes.report import CURVES, curve_scale, pyplot, run_report
 from shapes.seeding import seed_everything, torch_generator
 from shapes.train import TrainSettings, train_classifier
 
@@ -90,6 +90,20 @@ def test_stray_points_replace_the_given_share_inside_the_bounding_box():
         assert torch.allclose(px.pow(2).sum(-1).mean(-1), torch.ones(4), atol=1e-4)
         assert torch.allclose(pn.norm(dim=-1), torch.ones(4, 200), atol=1e-5)
     assert torch.equal(with_stray_points(x, nrm, 0.0, torch_generator(4))[1], nrm)
+
+
+def test_each_curve_has_one_x_scale_on_run_pages_and_comparisons():
+    # common practice: the point counts double along their curve (128 to 4096), so a base-2 log axis spaces
+    # them evenly; noise levels start at 0, which a symmetric log axis shows (a plain log axis cannot)
+    fig, ax = pyplot().subplots()
+    scales = {}
+    for key in CURVES:
+        ax.set_xscale("linear")
+        curve_scale(ax, key)
+        scales[key] = ax.get_xscale()
+    pyplot().close(fig)
+    assert scales == {"angle_sweep": "linear", "noise_sweep": "symlog", "outlier_sweep": "linear",
+                      "point_count_sweep": "log", "visible_sweep": "linear"}
 
 
 def test_point_counts_state_the_range_the_test_clouds_give():

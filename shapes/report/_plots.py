@@ -10,7 +10,7 @@ import numpy as np
 from shapes._atomic import atomic_path
 
 __all__ = ["pyplot", "save_figure", "plot_confusion", "plot_reliability", "plot_angle_sweep", "plot_perturbations",
-           "visible_curve", "CURVES"]
+           "visible_curve", "curve_scale", "CURVES"]
 
 
 def pyplot():
@@ -99,6 +99,15 @@ _SHORT = {"noise_sweep": "Gaussian noise σ (RMS radii)", "outlier_sweep": "shar
           "point_count_sweep": "points per cloud", "visible_sweep": "visible share of the surface (scans)"}
 
 
+def curve_scale(ax, key: str) -> None:
+    """Set the x scale of the curve ``key`` of :data:`CURVES`, the same on a run's page and in a comparison:
+    base-2 log for point counts, symmetric log (linear within 0.01) for the other log curves, else linear."""
+    if CURVES[key][1] and key == "point_count_sweep":
+        ax.set_xscale("log", base=2)
+    elif CURVES[key][1]:
+        ax.set_xscale("symlog", linthresh=0.01)
+
+
 def visible_curve(metrics: dict) -> dict[str, float]:
     """The scans' accuracy against visible share as ``{bin middle: accuracy}`` (empty without scans)."""
     bins = (metrics.get("scans") or {}).get("visible_sweep") or {}
@@ -119,12 +128,8 @@ def plot_perturbations(metrics: dict, path: str | os.PathLike) -> Path | None:
     plt = pyplot()
     fig, axes = plt.subplots(1, len(curves), figsize=(3.3 * len(curves), 3.2), squeeze=False)
     for ax, (key, curve) in zip(axes[0], curves.items()):
-        label, log_x = CURVES[key]
         ax.plot([float(x) for x in curve], [100 * v for v in curve.values()], marker="o")
-        if log_x and key == "point_count_sweep":
-            ax.set_xscale("log", base=2)
-        elif log_x:
-            ax.set_xscale("symlog", linthresh=0.01)
+        curve_scale(ax, key)
         ax.set_xlabel(_SHORT[key], fontsize=8)
         ax.set_ylim(0, 102)
         ax.grid(alpha=0.3)
