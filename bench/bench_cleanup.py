@@ -12,7 +12,9 @@ Python process imports ``shapes.data``, resets the kernel's high-water mark (wri
 ``/proc/self/clear_refs``), then reads the file with ``read_points`` (thinned to 200 000 while reading)
 and thins it to 1024 points by farthest-point subsampling, and reports ``VmHWM`` from
 ``/proc/self/status`` minus the ``VmRSS`` before the read. A second fresh process does the same around
-``numpy.load`` of the whole NPY array, the in-memory baseline.
+``numpy.load`` of the whole NPY array, the in-memory baseline, and a third around
+``shapes.data.prepare_cloud`` of the binary PLY (1024 points, normals estimated): what ``shapes predict``
+does to a point file before the network (read and thin, clean-up, normals, farthest-point thinning).
 
 Writes ``bench/results/cleanup.json``.
 
@@ -49,7 +51,7 @@ OUT = Path(__file__).resolve().parent / "results" / "cleanup.json"
 _MEASURE = r"""
 import json, sys, time
 import numpy as np
-from shapes.data import farthest_point_subsample, read_points
+from shapes.data import CloudRecipe, farthest_point_subsample, prepare_cloud, read_points
 
 def status(key):
     for line in open("/proc/self/status"):
@@ -65,6 +67,9 @@ if how == "read_points":
     scan = read_points(path, seed=0)
     keep = farthest_point_subsample(scan.points, 1024, seed=0)
     kept, rows = len(scan.points), scan.rows
+elif how == "prepare_cloud":  # what shapes predict does to a point file before the network: read, clean, normals, thin
+    cloud = prepare_cloud(path, CloudRecipe(points=1024), seed=0, needs_normals=True)
+    kept, rows = len(cloud.points), int(sys.argv[3])  # the file's rows, as the caller wrote them
 else:
     array = np.load(path)
     kept, rows = len(array), len(array)
@@ -131,13 +136,14 @@ def write_files(folder: Path, n: int, text_n: int) -> dict:
     return files
 
 
-def memory(files: dict) -> dict:
+def memory(files: dict, file_points: int) -> dict:
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     out = {}
-    runs = [(name, path, "read_points") for name, path in files.items()] + [("npy_float64", files["npy_float64"], "numpy.load")]
+    runs = [(name, path, "read_points") for name, path in files.items()] + [
+        ("npy_float64", files["npy_float64"], "numpy.load"), ("ply_binary", files["ply_binary"], "prepare_cloud")]
     for name, path, how in runs:
-        done = subprocess.run([sys.executable, "-c", _MEASURE, str(path), how], capture_output=True, text=True, env=env,
-                              check=True)
+        done = subprocess.run([sys.executable, "-c", _MEASURE, str(path), how, str(file_points)], capture_output=True,
+                              text=True, env=env, check=True)
         result = json.loads(done.stdout.strip().splitlines()[-1])
         result["file_mb"] = path.stat().st_size / 1024**2
         out[f"{name} {how}"] = result
@@ -160,10 +166,11 @@ def main(argv: list[str] | None = None) -> dict:
     load_before = os.getloadavg()
     rates = speed(scene(args.points), args.repeats)
     with tempfile.TemporaryDirectory() as tmp:
-        peaks = memory(write_files(Path(tmp), args.file_points, args.text_points))
+        peaks = memory(write_files(Path(tmp), args.file_points, args.text_points), args.file_points)
     report = {
         "what": "clean-up steps and estimate_normals in points/s on a part-on-table scene; peak memory of "
-                "read_points + farthest-point thinning of large files in fresh processes (VmHWM after clear_refs)",
+                "read_points + farthest-point thinning of large files, and of prepare_cloud (what shapes predict does to a point "
+                "file before the network) on the binary PLY, in fresh processes (VmHWM after clear_refs)",
         "when": datetime.now(timezone.utc).isoformat(timespec="seconds"),
         "points": args.points, "file_points": args.file_points, "text_points": args.text_points,
         "repeats": args.repeats, "machine": machine(),

@@ -7,13 +7,17 @@ under ``torchrun`` (gloo on the loopback interface). The figure is training clou
 epochs after the first (``train_seconds`` of each row of ``train_history.json``: the steps, not the
 validation), and its ratio to one process on one thread, measured in the same run of this script.
 
-Memory: a dataset folder of ``--clouds`` clouds of ``--cloud-points`` points (random points and normals; the
-demo's classes) is written to a temporary folder, as the ``train.npz`` shard ``shapes sample`` writes and as
-plain ``.npy`` arrays. A fresh Python process resets the kernel's high-water mark (writes ``5`` to
-``/proc/self/clear_refs``), then either loads the shard with ``shapes.data.load_split`` (the loader
-training uses, which reads the arrays whole) or opens the ``.npy`` arrays with ``numpy.load(mmap_mode="r")``
-and gathers ``--batches`` random batches of 32 clouds from them, as a training loop would; it reports
-``VmHWM`` from ``/proc/self/status`` minus the ``VmRSS`` before.
+Memory: a dataset of ``--clouds`` clouds of ``--cloud-points`` points (random points and normals; the demo's
+classes) is written to a temporary folder the way ``shapes sample`` writes it (``shapes.data._store.SplitWriter``:
+``train/points.npy`` ... filled cloud block by cloud block, in a fresh process whose peak is measured too), and
+again in the earlier layout, one ``train.npz`` shard read whole. Each load runs in a fresh Python process that
+imports ``shapes.data``, resets the kernel's high-water mark (writes ``5`` to ``/proc/self/clear_refs``), then
+calls ``shapes.data.load_split`` and gathers ``--batches`` random batches of 32 clouds with
+``CloudSplit.batch``, as the training loop does (``new``: memory maps; ``old``: the ``.npz`` read whole), or
+gathers every cloud once in random batches of 32 (``new_epoch``: one epoch of training's reads). The figure is
+``VmHWM`` from ``/proc/self/status`` minus the ``VmRSS`` before; ``RssAnon``/``RssFile`` at the end say how
+much of the resident memory is the process's own and how much is pages of the mapped files (page cache, which
+the kernel takes back when it needs them).
 
 Writes ``bench/results/scale.json``.
 
@@ -47,7 +51,7 @@ OUT = Path(__file__).resolve().parent / "results" / "scale.json"
 MODEL = ["backbone=distance", "backbone.hidden=32", "backbone.k=12", "backbone.layers=2", "train.batch_size=32",
          "train.dropout=0"]
 
-_MEASURE = r"""
+_STATUS = r"""
 import json, sys, time
 import numpy as np
 
@@ -56,28 +60,55 @@ def status(key):
         if line.startswith(key + ":"):
             return int(line.split()[1]) / 1024.0  # kB -> MB
 
+def reset():
+    with open("/proc/self/clear_refs", "w") as handle:
+        handle.write("5")  # reset VmHWM to the current RSS (Linux, proc(5))
+    return status("VmRSS"), time.perf_counter()
+
+def report(before, start, **more):
+    print(json.dumps({"rss_before_mb": before, "peak_mb": status("VmHWM"), "peak_over_start_mb": status("VmHWM") - before,
+                      "seconds": time.perf_counter() - start,
+                      # at the end: file pages of a memory map count in the RSS until the kernel needs them back
+                      "rss_anon_end_mb": status("RssAnon"), "rss_file_end_mb": status("RssFile"), **more}))
+"""
+
+_MEASURE = _STATUS + r"""
+from shapes.data import load_split
+
 folder, how, batches = sys.argv[1], sys.argv[2], int(sys.argv[3])
-if how == "load_split":
-    from shapes.data import load_split
-with open("/proc/self/clear_refs", "w") as handle:
-    handle.write("5")  # reset VmHWM to the current RSS (Linux, proc(5))
-before = status("VmRSS")
-start = time.perf_counter()
-if how == "load_split":
-    split = load_split(folder, "train")
-    clouds = len(split.labels)
+before, start = reset()
+split = load_split(folder, "train")
+loaded_mb = status("VmHWM") - before
+rng, total = np.random.default_rng(0), 0.0
+if how == "new_epoch":  # every cloud once, in random batches of 32: one epoch of the training loop's reads
+    order = rng.permutation(len(split))
+    picks = [order[i:i + 32] for i in range(0, len(order), 32)]
 else:
-    points = np.load(folder + "/points.npy", mmap_mode="r")
-    normals = np.load(folder + "/normals.npy", mmap_mode="r")
-    clouds, rng, total = len(points), np.random.default_rng(0), 0.0
-    for _ in range(batches):
-        pick = np.sort(rng.choice(clouds, 32, replace=False))
-        total += float(np.asarray(points[pick]).sum() + np.asarray(normals[pick]).sum())
-seconds = time.perf_counter() - start
-print(json.dumps({"rss_before_mb": before, "peak_mb": status("VmHWM"), "peak_over_start_mb": status("VmHWM") - before,
-                  "seconds": seconds, "clouds": clouds,
-                  # at the end: file pages of a memory map count in the RSS until the kernel needs them back
-                  "rss_anon_end_mb": status("RssAnon"), "rss_file_end_mb": status("RssFile")}))
+    picks = [rng.choice(len(split), 32, replace=False) for _ in range(batches)]
+for pick in picks:
+    points, normals, labels = split.batch(pick)
+    total += float(points.sum() + normals.sum())
+report(before, start, clouds=len(split), batches=len(picks), peak_after_load_split_mb=loaded_mb,
+       mapped=isinstance(split.points, np.memmap))
+"""
+
+_WRITE = _STATUS + r"""
+from shapes.data._store import SplitWriter
+
+folder, clouds, points, classes = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])
+before, start = reset()
+rng, block = np.random.default_rng(0), 1000
+writer = SplitWriter(folder + "/train", clouds, points)
+for first in range(0, clouds, block):  # as shapes sample adds its clouds, a block at a time
+    k = min(block, clouds - first)
+    n = rng.standard_normal((k, points, 3), dtype=np.float32)
+    writer.add(points=rng.standard_normal((k, points, 3), dtype=np.float32),
+               normals=n / np.linalg.norm(n, axis=-1, keepdims=True), labels=rng.integers(0, classes, k),
+               instance=(first + np.arange(k)) // 8, scale=np.ones(k), kind=np.zeros(k), visible=np.ones(k))
+writer.close()
+for split in ("val", "test"):
+    SplitWriter(folder + "/" + split, 0, points).close()
+report(before, start, clouds=clouds)
 """
 
 
@@ -123,38 +154,43 @@ def throughput(folder: Path, points: int, epochs: int) -> dict:
     return out
 
 
-def write_dataset(folder: Path, meta_from: Path, clouds: int, points: int) -> Path:
-    """A dataset folder of random clouds: meta.json (the demo's classes) and train.npz, plus .npy arrays."""
-    folder.mkdir()
+def _measured(script: str, *argv) -> dict:
+    done = subprocess.run([sys.executable, "-c", script, *map(str, argv)], capture_output=True, text=True, env=_env(),
+                          check=True)
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def write_datasets(folder: Path, meta_from: Path, clouds: int, points: int) -> tuple[Path, Path, dict]:
+    """The same random clouds as ``shapes sample`` writes them now (``new``) and in the earlier layout (``old``:
+    ``train.npz``); returns both folders and the measured peak of writing ``new``."""
     meta = json.loads((meta_from / "meta.json").read_text())
     meta["counts"] = {"train": clouds, "val": 0, "test": 0}
-    (folder / "meta.json").write_text(json.dumps(meta))
-    rng = np.random.default_rng(0)
-    arrays = {name: np.lib.format.open_memmap(folder / f"{name}.npy", mode="w+", dtype=np.float32,
-                                              shape=(clouds, points, 3)) for name in ("points", "normals")}
-    for start in range(0, clouds, 10_000):  # filled in blocks: this process never holds the whole array
-        stop = min(start + 10_000, clouds)
-        arrays["points"][start:stop] = rng.standard_normal((stop - start, points, 3), dtype=np.float32)
-        n = rng.standard_normal((stop - start, points, 3), dtype=np.float32)
-        arrays["normals"][start:stop] = n / np.linalg.norm(n, axis=-1, keepdims=True)
-    for a in arrays.values():
-        a.flush()
-    small = {"labels": rng.integers(0, len(meta["classes"]), clouds), "instance": np.arange(clouds) // 8,
-             "scale": np.ones(clouds, dtype=np.float32)}
-    np.savez(folder / "train.npz", points=arrays["points"], normals=arrays["normals"], **small)
-    return folder
+    new, old = folder / "new", folder / "old"
+    new.mkdir()
+    written = _measured(_WRITE, new, clouds, points, len(meta["classes"]))
+    (new / "meta.json").write_text(json.dumps({**meta, "format": 2}))
+    old.mkdir()
+    arrays = {k: np.load(new / "train" / f"{k}.npy", mmap_mode="r") for k in
+              ("points", "normals", "labels", "instance", "scale", "kind", "visible")}
+    np.savez(old / "train.npz", **arrays)  # numpy writes a mapped array into the zip in buffered chunks
+    for split in ("val", "test"):
+        np.savez(old / f"{split}.npz", **{k: v[:0] for k, v in arrays.items()})
+    (old / "meta.json").write_text(json.dumps({**meta, "format": 1}))
+    print(f"wrote {clouds:,} clouds through SplitWriter: peak {written['peak_over_start_mb']:.1f} MB over start, "
+          f"{written['seconds']:.1f} s")
+    return new, old, written
 
 
-def memory(folder: Path, batches: int) -> dict:
+def memory(new: Path, old: Path, batches: int) -> dict:
     out = {}
-    for how in ("load_split", "numpy_mmap"):
-        done = subprocess.run([sys.executable, "-c", _MEASURE, str(folder), how, str(batches)], capture_output=True,
-                              text=True, env=_env(), check=True)
-        result = json.loads(done.stdout.strip().splitlines()[-1])
-        out[how] = result
-        print(f"{how:11s} {result['clouds']:>8,} clouds: peak {result['peak_over_start_mb']:8.1f} MB over start, "
+    for how, folder in (("new", new), ("new_epoch", new), ("old", old)):
+        out[how] = result = _measured(_MEASURE, folder, how, batches)
+        print(f"{how:9s} {result['clouds']:>8,} clouds, {result['batches']:>5} batches: peak "
+              f"{result['peak_over_start_mb']:8.1f} MB over start ({result['peak_after_load_split_mb']:.1f} after "
+              f"load_split; at the end anon {result['rss_anon_end_mb']:.0f} MB, file {result['rss_file_end_mb']:.0f} MB), "
               f"{result['seconds']:.1f} s")
-    out["shard_mb"] = (folder / "train.npz").stat().st_size / 1024**2
+    out["files_mb"] = {"new": sum(f.stat().st_size for f in (new / "train").iterdir()) / 1024**2,
+                       "old": (old / "train.npz").stat().st_size / 1024**2}
     return out
 
 
@@ -174,12 +210,14 @@ def main(argv: list[str] | None = None) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         speed = throughput(tmp, args.points, args.epochs)
-        dataset = write_dataset(tmp / "big", tmp / "data", args.clouds, args.cloud_points)
-        peaks = memory(dataset, args.batches)
-        shutil.rmtree(dataset)
+        new, old, written = write_datasets(tmp, tmp / "data", args.clouds, args.cloud_points)
+        peaks = {"write_new": written, **memory(new, old, args.batches)}
+        shutil.rmtree(new)
+        shutil.rmtree(old)
     report = {
         "what": "training clouds/s in 1 and 2 processes (torchrun, gloo on loopback) at one global batch; peak "
-                "memory (VmHWM after clear_refs, fresh process) of loading a large dataset whole and by memory map",
+                "memory (VmHWM after clear_refs, fresh process) of writing a large dataset as shapes sample does, and of load_split "
+                "plus random batches of 32 on it (new: memory maps) and on the earlier .npz layout (old: read whole)",
         "when": datetime.now(timezone.utc).isoformat(timespec="seconds"),
         "model": MODEL, "points": args.points, "epochs": args.epochs, "clouds": args.clouds,
         "cloud_points": args.cloud_points, "batches": args.batches, "machine": machine(),

@@ -76,23 +76,33 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
 
 @contextlib.contextmanager
 def atomic_dir(path: str | os.PathLike) -> Iterator[Path]:
-    """Yield a temporary folder beside ``path``; on success it replaces ``path`` whole."""
+    """Yield a temporary folder beside ``path``; on success it replaces ``path`` whole.
+
+    The body may run long (``shapes sample`` draws every cloud in it) and stays open to Ctrl-C and
+    SIGTERM; making the folder, the swap into place and the removal after a failure wait for them, so
+    an interruption leaves either the old ``path`` or the new one, and no temporary folder.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
+    tmp = None
     try:
+        with signals_deferred():
+            tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
         yield tmp
-        _ordinary_mode(tmp, folder=True)
-        if path.exists():
-            old = path.with_name(f".{path.name}.old")
-            shutil.rmtree(old, ignore_errors=True)
-            os.replace(path, old)
-            os.replace(tmp, path)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, path)
+        with signals_deferred():
+            _ordinary_mode(tmp, folder=True)
+            if path.exists():
+                old = path.with_name(f".{path.name}.old")
+                shutil.rmtree(old, ignore_errors=True)
+                os.replace(path, old)
+                os.replace(tmp, path)
+                shutil.rmtree(old, ignore_errors=True)
+            else:
+                os.replace(tmp, path)
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        with signals_deferred():
+            if tmp is not None:
+                shutil.rmtree(tmp, ignore_errors=True)
         raise
 
 

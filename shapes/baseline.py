@@ -48,7 +48,7 @@ def train_d2(data_dir: str | os.PathLike, run_dir: str | os.PathLike, options: D
     classifier.fit(np.asarray(train.points, dtype=np.float64), np.asarray(train.labels, dtype=np.int64))
     network = D2Network(classifier, len(meta["classes"]))
     with torch.no_grad():
-        val_pred = network(torch.as_tensor(val.points, dtype=torch.float32)).argmax(-1).numpy()
+        val_pred = network(torch.tensor(np.asarray(val.points), dtype=torch.float32)).argmax(-1).numpy()
     val_acc = float((val_pred == np.asarray(val.labels)).mean()) if len(val_pred) else 0.0
     _, params = classifier.state()
     run_dir = Path(run_dir)

@@ -112,8 +112,8 @@ def evaluate_run(run: str | os.PathLike, data_dir: str | os.PathLike | None = No
         raise DataError(f"the classes in '{data_dir}' differ from the checkpoint's: "
                         f"{len(test.meta['classes'])} vs {len(classes)} classes.")
     twin_index = meta.twin_index()
-    x = torch.as_tensor(test.points, dtype=torch.float32)
-    nrm = torch.as_tensor(test.normals, dtype=torch.float32)
+    x = torch.tensor(np.asarray(test.points), dtype=torch.float32)  # copies: the split's arrays are read-only maps
+    nrm = torch.tensor(np.asarray(test.normals), dtype=torch.float32)
     y = np.asarray(test.labels)
     gen = torch_generator(seed)
     results: dict = {"checkpoint": str(ckpt), "data": str(data_dir), "backbone": dataclasses.asdict(meta.backbone),

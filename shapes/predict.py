@@ -186,8 +186,8 @@ def calibrate(model, meta: RunMeta, rotations: torch.Tensor, accept: float, data
                         f"({len(val.meta['classes'])} vs {len(meta.classes)}); calibrate on the run's own dataset.")
     if len(val) == 0:
         raise DataError(f"the validation split of '{data_dir}' is empty; nothing to calibrate the threshold on.")
-    normals = torch.as_tensor(val.normals) if model.uses_normals else None
-    probs, _ = pose_averaged(model, torch.as_tensor(val.points), normals, rotations, batch_size)
+    normals = torch.tensor(np.asarray(val.normals)) if model.uses_normals else None  # copies of the read-only maps
+    probs, _ = pose_averaged(model, torch.tensor(np.asarray(val.points)), normals, rotations, batch_size)
     scores = known_scores(probs.numpy(), meta.twin_index(), model.symmetry == "E3")
     threshold = float(np.quantile(scores, 1.0 - accept))
     return {"value": threshold, "accept": float(accept), "data": str(data_dir), "validation_clouds": int(len(val)),

@@ -33,7 +33,7 @@ from shapes._atomic import atomic_path, signals_deferred, write_json
 from shapes._runtime import choose_device, progress, set_threads, versions
 from shapes._resume import RESUMABLE, StopRequests, check_resumable, read_resume_state, rng_states, set_rng_states
 from shapes.backbones import Backbone, Classifier, build_backbone
-from shapes.data import load_split, read_meta
+from shapes.data import CloudSplit, load_split, read_meta
 from shapes.errors import ConfigError, Interrupted, TrainingError
 from shapes.geometry import POSE_REGIMES, check_regime, random_poses
 from shapes.run import CHECKPOINT, HISTORY, RESUME, BackboneRecord, HeadRecord, RunMeta, logits_under_poses
@@ -131,17 +131,21 @@ def reflect_to_twins(points: torch.Tensor, labels: torch.Tensor, twin_of: torch.
 
 
 @torch.no_grad()
-def _validate(model: nn.Module, points: torch.Tensor, normals: torch.Tensor, labels: torch.Tensor, poses: str,
-              seed: int, batch_size: int) -> tuple[float, float]:
-    """Accuracy and mean cross-entropy on the validation clouds, each turned by a seeded pose."""
+def _validate(model: nn.Module, split: CloudSplit, poses: str, seed: int, batch_size: int,
+              device: torch.device) -> tuple[float, float]:
+    """Accuracy and mean cross-entropy on the validation clouds, each turned by a seeded pose; the clouds
+    are read from the split one batch at a time."""
     model.eval()
     gen = torch_generator(seed)
-    rot = random_poses(poses, len(points), generator=gen, dtype=points.dtype, device=points.device)
-    logits = logits_under_poses(model, points, rot, batch_size, normals)
-    correct = int((logits.argmax(-1) == labels).sum())
-    loss = sum(float(nn.functional.cross_entropy(logits[i:i + batch_size], labels[i:i + batch_size], reduction="sum"))
-               for i in range(0, len(points), batch_size))  # summed batch by batch, as the logits were made
-    n = max(len(points), 1)
+    rot = random_poses(poses, len(split), generator=gen, dtype=torch.float32, device=device)
+    correct, loss = 0, 0.0
+    for i in range(0, len(split), batch_size):
+        rows = range(i, min(i + batch_size, len(split)))
+        points, normals, labels = (torch.from_numpy(a).to(device) for a in split.batch(rows))
+        logits = logits_under_poses(model, points, rot[i:i + batch_size], batch_size, normals)
+        correct += int((logits.argmax(-1) == labels).sum())
+        loss += float(nn.functional.cross_entropy(logits, labels, reduction="sum"))
+    n = max(len(split), 1)
     return correct / n, loss / n
 
 
@@ -168,15 +172,10 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     device = choose_device(s.device)
     rank, world = _distributed()
     meta = read_meta(data_dir)
+    # memory maps: each step copies its batch's clouds (points and normals, which turn with them), no more
     train, val = load_split(data_dir, "train"), load_split(data_dir, "val")
-    x_train = torch.as_tensor(train.points, dtype=torch.float32, device=device)
-    y_train = torch.as_tensor(train.labels, dtype=torch.long, device=device)
-    x_val = torch.as_tensor(val.points, dtype=torch.float32, device=device)
-    y_val = torch.as_tensor(val.labels, dtype=torch.long, device=device)
-    n_train = torch.as_tensor(train.normals, dtype=torch.float32, device=device)  # (M, N, 3), turn with the points
-    n_val = torch.as_tensor(val.normals, dtype=torch.float32, device=device)
     checkpoint_meta = RunMeta.for_dataset(
-        meta, data_dir, x_train.shape[1], BackboneRecord(backbone.name, backbone.config_dict(), backbone.symmetry),
+        meta, data_dir, train.points.shape[1], BackboneRecord(backbone.name, backbone.config_dict(), backbone.symmetry),
         head=HeadRecord(s.head_hidden, s.dropout), train={k: v for k, v in asdict(s).items() if k != "extra"},
         versions=versions(), extra=dict(s.extra))
     twin_of = torch.as_tensor(checkpoint_meta.twin_index(), device=device)  # (C,)
@@ -184,7 +183,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
     no_twin = set((meta.get("twin_check") or {}).get("unpaired", []))
     mirrorable = torch.tensor([c not in no_twin for c in checkpoint_meta.classes], device=device)  # (C,)
     if state is not None:
-        check_resumable(state, asdict(s), backbone, world, len(x_train))
+        check_resumable(state, asdict(s), backbone, world, len(train))
 
     model = Classifier(backbone, len(checkpoint_meta.classes), hidden=s.head_hidden, dropout=s.dropout).to(device)
     net = nn.parallel.DistributedDataParallel(model) if world > 1 else model
@@ -197,7 +196,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                           f"split evenly between them), got {s.batch_size} instead.")
     if world > 1:  # dropout masks: drawn per process, each from its own stream (the weights are rank 0's)
         torch.manual_seed(s.seed + 7919 * rank)
-    steps_per_epoch = math.ceil(len(x_train) // world * world / s.batch_size)
+    steps_per_epoch = math.ceil(len(train) // world * world / s.batch_size)
     total = steps_per_epoch * s.epochs
     budget = 60.0 * s.max_minutes if s.max_minutes else math.inf  # seconds
     gen = torch_generator(s.seed)  # the same on every rank: see the permutation below
@@ -245,7 +244,7 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                    "history": history, "best": list(best), "saved": saved,
                    "model": {k: v.detach().cpu() for k, v in model.state_dict().items()},
                    "optimizer": opt.state_dict(), "rng": rng_states(gen, device),
-                   "settings": asdict(s), "meta": checkpoint_meta.to_dict(), "world": world, "train_clouds": len(x_train),
+                   "settings": asdict(s), "meta": checkpoint_meta.to_dict(), "world": world, "train_clouds": len(train),
                    "data": os.path.abspath(data_dir)}
         with atomic_path(run_dir / RESUME) as tmp:
             torch.save(payload, tmp)
@@ -260,11 +259,11 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             net.train()
             if epoch_done:  # a new epoch (not one resumed part-way)
                 with signals_deferred():
-                    perm = torch.randperm(len(x_train), generator=gen)
+                    perm = torch.randperm(len(train), generator=gen)
                     position, losses, epoch_done = 0, [], False
             # every rank takes the same permutation (same seed) and the same global batches, of which it
             # trains on an equal share: DDP's averaged gradient is the one process's over the global batch
-            order = perm[: len(perm) // world * world].to(device)
+            order = perm[: len(perm) // world * world]
             t0 = time.perf_counter()
             for start in progress(range(position, len(order), s.batch_size), desc=f"epoch {epoch}/{s.epochs}"):
                 elapsed = time.perf_counter() - started
@@ -284,10 +283,9 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
                 # draws for the whole global batch, as one process makes them; this rank keeps its share
                 share = len(batch) // world
                 mine = slice(rank * share, (rank + 1) * share)
-                idx = batch[mine]
-                rot = random_poses(s.poses, len(batch), generator=gen, dtype=x_train.dtype)[mine].to(device)
-                x, y = x_train[idx] @ rot.transpose(-1, -2), y_train[idx]  # (b, N, 3), (b,)
-                n = n_train[idx] @ rot.transpose(-1, -2)  # (b, N, 3)
+                x, n, y = (torch.from_numpy(a).to(device) for a in train.batch(batch[mine].numpy()))
+                rot = random_poses(s.poses, len(batch), generator=gen, dtype=torch.float32)[mine].to(device)
+                x, n = x @ rot.transpose(-1, -2), n @ rot.transpose(-1, -2)  # (b, N, 3), turned together
                 if s.mirror > 0:
                     chosen = (torch.rand(len(batch), generator=gen)[mine] < s.mirror).to(device) & mirrorable[y]
                     n, _ = reflect_to_twins(n, y, twin_of, chosen)  # an outward normal reflects with its surface
@@ -312,8 +310,8 @@ def train_classifier(backbone: Backbone, data_dir: str | os.PathLike, run_dir: s
             train_seconds = time.perf_counter() - t0
             if not _finite_weights(model):  # the last step of the epoch overflowed: never save it
                 raise diverged("the weights are no longer finite")
-            val_acc, val_loss = _validate(model, x_val, n_val, y_val, s.poses, seed=s.seed,
-                                          batch_size=4 * s.batch_size)
+            val_acc, val_loss = _validate(model, val, s.poses, seed=s.seed, batch_size=4 * s.batch_size,
+                                          device=device)
             if not math.isfinite(val_loss):
                 raise diverged(f"the validation loss is {val_loss}")
             mean_loss = float(np.mean(losses))

@@ -312,7 +312,7 @@ def test_the_d2_run_matches_a_scikit_learn_forest_on_its_histograms(d2_runs):
     want[:, forest.classes_] = forest.predict_proba(d2_features(np.asarray(test.points, dtype=np.float64), bins=64,
                                                                 seed=0))
     with torch.no_grad():
-        got = torch.softmax(model(torch.as_tensor(test.points, dtype=torch.float64)), -1).numpy()
+        got = torch.softmax(model(torch.tensor(np.asarray(test.points), dtype=torch.float64)), -1).numpy()
     np.testing.assert_allclose(got, want, atol=1e-6)
 
 

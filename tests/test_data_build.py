@@ -10,6 +10,12 @@ from shapes.data import build_dataset, load_split, read_catalog, read_meta, spli
 from shapes.errors import ConfigError, DataError, MeshError
 
 SMALL = dict(points=48, copies={"train": 2, "val": 1, "test": 1}, oversample=2)
+KEYS = ("points", "normals", "labels", "instance", "scale", "kind", "visible")
+
+
+def shard(out, split) -> dict:
+    """A split's arrays as plain numpy reads them from its folder (no memory map)."""
+    return {key: np.load(out / split / f"{key}.npy") for key in KEYS}
 
 
 def chiral_mesh(size):
@@ -54,20 +60,24 @@ def test_shards_shapes_and_dtypes(built):
     _, out = built
     meta = read_meta(out)
     for split, copies in SMALL["copies"].items():
-        with np.load(out / f"{split}.npz") as shard:
-            m = shard["labels"].shape[0]
-            assert m == meta["counts"][split]
-            assert shard["points"].shape == (m, 48, 3) and shard["points"].dtype == np.float32
-            assert shard["normals"].shape == (m, 48, 3) and shard["normals"].dtype == np.float32
-            assert shard["labels"].dtype == np.int64 and shard["instance"].dtype == np.int32
-            assert shard["scale"].shape == (m,) and shard["scale"].dtype == np.float32
-            n_inst = sum(i["split"] == split for i in meta["instances"])
-            assert m == n_inst * copies
-            # each cloud is normalised: centroid 0, unit RMS radius (float32 storage)
-            pts = shard["points"].astype(np.float64)
-            np.testing.assert_allclose(pts.mean(axis=1), 0.0, atol=1e-5)
-            np.testing.assert_allclose(np.sqrt((pts**2).sum(-1).mean(-1)), 1.0, atol=1e-5)
-            np.testing.assert_allclose(np.linalg.norm(shard["normals"], axis=-1), 1.0, atol=1e-5)
+        arrays = shard(out, split)
+        m = arrays["labels"].shape[0]
+        assert m == meta["counts"][split]
+        assert arrays["points"].shape == (m, 48, 3) and arrays["points"].dtype == np.float32
+        assert arrays["normals"].shape == (m, 48, 3) and arrays["normals"].dtype == np.float32
+        assert arrays["labels"].dtype == np.int64 and arrays["instance"].dtype == np.int32
+        assert arrays["scale"].shape == (m,) and arrays["scale"].dtype == np.float32
+        assert arrays["kind"].dtype == np.int8 and arrays["visible"].dtype == np.float32
+        n_inst = sum(i["split"] == split for i in meta["instances"])
+        assert m == n_inst * copies
+        # each cloud is normalised: centroid 0, unit RMS radius (float32 storage)
+        pts = arrays["points"].astype(np.float64)
+        np.testing.assert_allclose(pts.mean(axis=1), 0.0, atol=1e-5)
+        np.testing.assert_allclose(np.sqrt((pts**2).sum(-1).mean(-1)), 1.0, atol=1e-5)
+        np.testing.assert_allclose(np.linalg.norm(arrays["normals"], axis=-1), 1.0, atol=1e-5)
+    # the layout: meta.json and one folder of plain .npy arrays per split, nothing else
+    assert sorted(p.name for p in out.iterdir()) == ["meta.json", "test", "train", "val"]
+    assert sorted(p.name for p in (out / "train").iterdir()) == sorted(f"{k}.npy" for k in KEYS)
 
 
 def test_splits_by_group_with_twins_together(built):
@@ -124,10 +134,10 @@ def test_same_seed_same_arrays(built, tmp_path):
     again = build_dataset(base / "cat", tmp_path / "again", seed=3, **SMALL)
     other = build_dataset(base / "cat", tmp_path / "other", seed=4, **SMALL)
     for split in ("train", "val", "test"):
-        a, b = np.load(out / f"{split}.npz"), np.load(again / f"{split}.npz")
-        for key in a.files:
+        a, b = shard(out, split), shard(again, split)
+        for key in KEYS:
             np.testing.assert_array_equal(a[key], b[key])
-    a, c = np.load(out / "train.npz"), np.load(other / "train.npz")
+    a, c = shard(out, "train"), shard(other, "train")
     assert a["points"].shape != c["points"].shape or not np.allclose(a["points"], c["points"])
 
 

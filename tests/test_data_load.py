@@ -27,9 +27,8 @@ def test_load_split_matches_files(dataset):
     data = load_split(dataset, "train")
     assert isinstance(data, CloudSplit) and data.split == "train"
     assert data.classes == ["ball", "box"]  # folder catalog: classes in sorted order
-    with np.load(dataset / "train.npz") as shard:
-        for key in ("points", "normals", "labels", "instance", "scale"):
-            np.testing.assert_array_equal(getattr(data, key), shard[key])
+    for key in ("points", "normals", "labels", "instance", "scale"):
+        np.testing.assert_array_equal(getattr(data, key), np.load(dataset / "train" / f"{key}.npy"))
     # hand-worked: 3 groups per class at 60/20/20 give 1 train group each; 2 classes x 2 copies
     assert len(data) == data.meta["counts"]["train"] == 4
 
@@ -73,10 +72,10 @@ def test_meta_and_split_errors(dataset, tmp_path):
     with pytest.raises(DataError, match="unreadable"):
         read_meta(tmp_path)
     (tmp_path / "meta.json").write_text(json.dumps({"format": 7}))
-    with pytest.raises(DataError, match='"format": 1, got 7'):
+    with pytest.raises(DataError, match='"format": 1 or 2, got 7'):
         read_meta(tmp_path)
     meta = read_meta(dataset)
-    (tmp_path / "meta.json").write_text(json.dumps(meta))
+    (tmp_path / "meta.json").write_text(json.dumps({**meta, "format": 1}))  # the earlier layout: .npz shards
     with pytest.raises(DataError, match="has no train.npz"):
         load_split(tmp_path, "train")
     with pytest.raises(DataError, match="split should be one of"):

@@ -117,7 +117,7 @@ def test_threshold_is_the_numpy_quantile_of_validation_scores(tiny):
     rotations = random_poses("any", poses, generator=torch_generator(5))
     scores = []
     with torch.no_grad():
-        for cloud in torch.as_tensor(val.points):
+        for cloud in torch.tensor(np.asarray(val.points)):
             p = np.mean([torch.softmax(model(cloud[None] @ r.T), -1)[0].double().numpy() for r in rotations], axis=0)
             # this E3 backbone cannot see hand: a handed class's score joins its twin's probability
             scores.append(max(p[k] + (p[CLASSES.index(TWIN[c])] if TWIN[c] != c else 0.0)

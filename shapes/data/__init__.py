@@ -1,9 +1,10 @@
 """The data room: read meshes and scans, sample and scan them, write and load point-cloud shards.
 
 Meshes come in (STL, OBJ, PLY, OFF, GLB), clouds go out: :func:`build_dataset` turns a catalog
-folder into ``train/val/test.npz`` + ``meta.json``; :func:`load_split` and :class:`CloudDataset`
-serve them to torch. Every user mistake raises :class:`~shapes.errors.MeshError` or
-:class:`~shapes.errors.DataError` with a one-line message naming the file.
+folder into ``meta.json`` and one folder of plain ``.npy`` arrays per split (``train/points.npy``, ...);
+:func:`load_split` maps them read-only and :class:`CloudDataset` serves them to torch. Every user
+mistake raises :class:`~shapes.errors.MeshError` or :class:`~shapes.errors.DataError` with a one-line
+message naming the file.
 """
 
 from shapes.data._build import (

@@ -1,13 +1,16 @@
 """Turn a catalog of meshes into point-cloud shards: the job behind ``shapes sample``.
 
-Layout of the output folder (written whole or not at all)::
+Layout of the output folder (written whole or not at all; see :mod:`shapes.data._store`)::
 
     out_dir/
-      train.npz  val.npz  test.npz   points (M, N, 3) float32, normals (M, N, 3) float32,
-                                     labels (M,) int64, instance (M,) int32, scale (M,) float32,
-                                     kind (M,) int8 (0 full surface, 1 virtual scan),
-                                     visible (M,) float32 (share of the surface area seen; 1 for surfaces)
       meta.json                      classes, twins, handed, instances, sampler settings, ...
+      train/ val/ test/              one plain .npy file per array: points.npy (M, N, 3) float32,
+                                     normals.npy (M, N, 3) float32, labels.npy (M,) int64,
+                                     instance.npy (M,) int32, scale.npy (M,) float32,
+                                     kind.npy (M,) int8 (0 full surface, 1 virtual scan),
+                                     visible.npy (M,) float32 (share of the surface area seen; 1 for surfaces)
+
+Each cloud is written to its split's files as it is drawn, so sampling holds one cloud, not the dataset.
 """
 
 from __future__ import annotations
@@ -36,6 +39,7 @@ from shapes.data._sample import farthest_point_subsample, normalise, sample_surf
 from shapes.data._clean import CleanSettings, clean_points
 from shapes.data._scan import ScannerSettings, scan_part, scan_view
 from shapes.data._split import SPLITS, split_groups
+from shapes.data._store import FORMAT, META_FILE, OPTIONAL_KEYS, SHARD_KEYS, SplitWriter
 
 __all__ = ["build_dataset", "sample_cloud", "draw_cloud", "dense_normals", "DEFAULT_COPIES", "MODES",
            "NORMAL_SOURCES", "NORMALS_K", "NORMALS_POINTS", "META_FILE", "SHARD_KEYS", "OPTIONAL_KEYS", "SURFACE", "SCAN"]
@@ -68,12 +72,7 @@ NORMALS_POINTS = 8192
 # of studs and brackets on scan files of 1000 points (a demo run: 79.7% at 3000 points, 59.4% at
 # 1000, handed 71.9% -> 37.5%; bench/accuracy_scans.py --points).
 SPARSEST = 16
-META_FILE = "meta.json"
-SHARD_KEYS = ("points", "normals", "labels", "instance", "scale")
-# Keys added later; shards written before them load with the defaults below.
-OPTIONAL_KEYS = {"kind": (np.int8, 0), "visible": (np.float32, 1.0)}
 SURFACE, SCAN = 0, 1  # values of ``kind``
-_FORMAT = 1
 
 
 def _check_settings(points, copies, mode, scan_fraction, oversample, noise, seed, normals="mesh",
@@ -347,40 +346,10 @@ def build_dataset(
     twin_check = {k: v for k, v in record.items() if k != "seconds"}  # the clock reading stays out of meta.json
     label = {c: k for k, c in enumerate(catalog.classes)}
 
-    shards = {sp: {key: [] for key in SHARD_KEYS + tuple(OPTIONAL_KEYS)} for sp in SPLITS}
-    bar = tqdm(catalog.instances, desc="sampling", unit="mesh",
-               disable=not (progress and sys.stderr.isatty()))
-    for i, inst in enumerate(bar):
-        mesh = read_mesh(inst.file)
-        split = split_of[inst.group]
-        n_copies = s["copies"][split]
-        n_scans = _scan_copies(n_copies, s["mode"], s["scan_fraction"])
-        for k in range(n_copies):
-            gen = np.random.default_rng(np.random.SeedSequence([s["seed"], i, k]))
-            pts, nrm, scale, visible = draw_cloud(mesh, k < n_scans, s, gen)
-            out = shards[split]
-            out["kind"].append(SCAN if k < n_scans else SURFACE)
-            out["visible"].append(visible)
-            out["points"].append(pts.astype(np.float32))
-            out["normals"].append(nrm.astype(np.float32))
-            out["labels"].append(label[inst.cls])
-            out["instance"].append(i)
-            out["scale"].append(scale)
-    bar.close()
-
     n = s["points"]
-    dtypes = {"labels": np.int64, "instance": np.int32, "scale": np.float32,
-              **{key: dt for key, (dt, _) in OPTIONAL_KEYS.items()}}
-    arrays = {}
-    for sp in SPLITS:
-        out = shards[sp]
-        arrays[sp] = {
-            "points": np.stack(out["points"]) if out["points"] else np.zeros((0, n, 3), np.float32),
-            "normals": np.stack(out["normals"]) if out["normals"] else np.zeros((0, n, 3), np.float32),
-            **{key: np.asarray(out[key], dtype=dt) for key, dt in dtypes.items()},
-        }
+    counts = {sp: sum(s["copies"][sp] for inst in catalog.instances if split_of[inst.group] == sp) for sp in SPLITS}
     meta = {
-        "format": _FORMAT,
+        "format": FORMAT,
         "classes": list(catalog.classes),
         "twins": twin_map,
         "handed": {c: twin_map[c] != c for c in catalog.classes},
@@ -417,10 +386,22 @@ def build_dataset(
         "units": catalog.units,
         "versions": {"shapes": shapes.__version__, "numpy": np.__version__,
                      "trimesh": trimesh.__version__, "torch": torch.__version__},
-        "counts": {sp: int(len(arrays[sp]["labels"])) for sp in SPLITS},
+        "counts": counts,
     }
-    with atomic_dir(out_dir) as tmp:
-        for sp in SPLITS:
-            np.savez(tmp / f"{sp}.npz", **arrays[sp])
+    with atomic_dir(out_dir) as tmp:  # an interrupted or failed run leaves neither out_dir nor a half of it
+        writers = {sp: SplitWriter(tmp / sp, counts[sp], n) for sp in SPLITS}
+        bar = tqdm(catalog.instances, desc="sampling", unit="mesh", disable=not (progress and sys.stderr.isatty()))
+        for i, inst in enumerate(bar):
+            mesh = read_mesh(inst.file)
+            split = split_of[inst.group]
+            n_scans = _scan_copies(s["copies"][split], s["mode"], s["scan_fraction"])
+            for k in range(s["copies"][split]):
+                gen = np.random.default_rng(np.random.SeedSequence([s["seed"], i, k]))
+                pts, nrm, scale, visible = draw_cloud(mesh, k < n_scans, s, gen)
+                writers[split].add(points=pts, normals=nrm, labels=label[inst.cls], instance=i, scale=scale,
+                                   kind=SCAN if k < n_scans else SURFACE, visible=visible)
+        bar.close()
+        for writer in writers.values():
+            writer.close()
         write_json(tmp / META_FILE, meta)
     return out_dir
