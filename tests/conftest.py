@@ -1,10 +1,15 @@
-"""Shared fixtures."""
+"""Shared fixtures and helpers. Test files import the helpers by name (``from conftest import DEMO``):
+pytest puts tests/ on the path, and this module is the one pytest itself loaded."""
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
+# `shapes sample` options of the tiny end-to-end pipeline (test_cli, test_compare): default mode (mixed)
+TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1",
+               "sample.twins=declared"]  # the demo's declared map; checking it is tested in test_parts_check_twins
 
 
 @pytest.fixture(scope="session")
@@ -17,6 +22,75 @@ def tiny_surface_data(tmp_path_factory):
                  "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1",
                  "sample.twins=declared"]) == 0
     return root / "data"
+
+
+def demo_file(name: str) -> Path:
+    """The first mesh file (by name) of demo class ``name``."""
+    return sorted((DEMO / name).glob("*.ply"))[0]
+
+
+# ---------------------------------------------------------------- one-line errors
+
+
+def one_error_line(capsys) -> str:
+    """The command's standard error is one line starting "error: "; returns it."""
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: "), err
+    return err[0]
+
+
+def one_line_naming(exc_info, path) -> str:
+    """The raised error's message is one line that names ``path``; returns it."""
+    message = str(exc_info.value)
+    assert "\n" not in message and str(path) in message, message
+    return message
+
+
+# ---------------------------------------------------------------- meshes and clouds
+
+
+def sphere_points(n: int, radius: float = 1.0, seed: int = 0) -> np.ndarray:
+    """``n`` points uniform on a sphere about the origin: normalised Gaussian vectors (Muller 1959, "A note on
+    a method for generating points uniformly on n-dimensional spheres", Comm. ACM 2(4))."""
+    v = np.random.default_rng(seed).normal(size=(n, 3))
+    return radius * v / np.linalg.norm(v, axis=1, keepdims=True)
+
+
+def surface_points(mesh, n: int, seed: int) -> np.ndarray:
+    """``n`` points on the surface of ``mesh``. reference: trimesh's area-weighted sampler."""
+    import trimesh
+
+    return np.asarray(trimesh.sample.sample_surface(mesh, n, seed=seed)[0])
+
+
+def surface_distance(mesh, points, chunk: int = 40) -> tuple[np.ndarray, np.ndarray]:
+    """Distance of each point to the mesh and the index of the nearest face, by brute force over every
+    (point, face) pair. reference: trimesh.triangles.closest_point (trimesh.proximity needs rtree, not
+    installed here)."""
+    import trimesh
+
+    tri = np.asarray(mesh.triangles)
+    dist, face = [np.zeros(0)], [np.zeros(0, dtype=int)]
+    for start in range(0, len(points), chunk):
+        block = np.asarray(points[start:start + chunk])
+        n, f = len(block), len(tri)
+        closest = trimesh.triangles.closest_point(np.tile(tri, (n, 1, 1)), np.repeat(block, f, axis=0))
+        d = np.linalg.norm(closest - np.repeat(block, f, axis=0), axis=1).reshape(n, f)
+        dist.append(d.min(axis=1))
+        face.append(d.argmin(axis=1))
+    return np.concatenate(dist), np.concatenate(face)
+
+
+def posed_mesh(mesh, seed: int, shift=(12.0, -7.0, 3.0)):
+    """A copy of ``mesh`` turned by a Haar-random rotation and shifted. reference: scipy Rotation.random."""
+    from scipy.spatial.transform import Rotation
+
+    out = mesh.copy()
+    t = np.eye(4)
+    t[:3, :3] = Rotation.random(random_state=seed).as_matrix()
+    t[:3, 3] = shift
+    out.apply_transform(t)
+    return out
 
 
 # -- helpers shared by the backbone tests (import them: `from conftest import rotate, rel_change`) --------

@@ -164,8 +164,9 @@ def test_plain_on_grids_sees_translations_not_rotations(cloud):
 
 @pytest.mark.parametrize("name,options,symmetry", EQUIVARIANT, ids=EQ_IDS)
 def test_handed_grid_under_reflections_by_declared_symmetry(name, options, symmetry):
-    # reference: random_improper (det -1); a screw lattice has no mirror plane (common practice: a
-    # helix and its mirror image are the two hands), so SE3 backbones must tell them apart
+    # reference: random_improper (det -1); a screw lattice has no mirror plane (convention: docs/design.md,
+    # "Parity and handedness": a helix and its mirror image are the two hands), so SE3 backbones must tell
+    # them apart
     x = helix_lattice()
     Q = random_improper(10, generator=torch.Generator().manual_seed(4), dtype=torch.float64)
     net = make(name, options)
@@ -212,8 +213,8 @@ def test_smooth_graph_scale_is_the_next_neighbour_and_ties_there_weigh_nothing()
 
 
 def test_smooth_graph_masks_padding_and_handles_small_clouds_and_radius():
-    # common practice: padding is no one's neighbour; with k + 1 points there is no (k+1)-th neighbour,
-    # every other point is in, nothing can enter, and the scale is infinite (weights 1)
+    # convention: docs/design.md, "Tensor shapes": padding never sends messages. With k + 1 points there is
+    # no (k+1)-th neighbour, every other point is in, nothing can enter, and the scale is infinite (weights 1)
     x = torch.randn(1, 9, 3, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
     padded = torch.cat([x, 100 + torch.randn(1, 4, 3, dtype=torch.float64)], 1)
     mask = torch.arange(13)[None] < 9
@@ -272,7 +273,8 @@ def test_crossing_the_kth_neighbour_changes_features_continuously(name, options,
 
 @pytest.mark.parametrize("name,options,symmetry", EQUIVARIANT, ids=EQ_IDS)
 def test_option_is_in_the_config_and_the_yaml_and_is_checked(name, options, symmetry):
-    # common practice: an option exists in the dataclass and the shipped yaml alike, default on
+    # convention: docs/design.md, "Options": an option is a field of the Config dataclass and a key of the
+    # shipped yaml alike; this one is on by default in both
     import dataclasses
     from pathlib import Path
 

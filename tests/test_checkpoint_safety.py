@@ -7,6 +7,7 @@ from pathlib import Path
 import pytest
 import torch
 
+from conftest import one_error_line
 from shapes.cli import main
 from shapes.errors import DataError
 from shapes.run import load_classifier
@@ -20,12 +21,6 @@ class _TouchOnLoad:
 
     def __reduce__(self):
         return (pathlib.Path.touch, (pathlib.Path(self.marker),))
-
-
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
 
 
 @pytest.fixture

@@ -13,18 +13,9 @@ from scipy.spatial.transform import Rotation
 from scipy.stats import kstest
 from sklearn.ensemble import RandomForestClassifier
 
+from conftest import sphere_points, surface_points
 from shapes.classic import D2_RANGE, D2Classifier, d2_distances, d2_features, d2_histogram, rms_radius
 from shapes.errors import DataError, InputError, ShapesError
-
-
-def sphere(n: int, radius: float = 1.0, seed: int = 0) -> np.ndarray:
-    """Points uniform on a sphere: normalised Gaussian vectors (Muller 1959)."""
-    v = np.random.default_rng(seed).normal(size=(n, 3))
-    return radius * v / np.linalg.norm(v, axis=1, keepdims=True)
-
-
-def surface(mesh: trimesh.Trimesh, n: int, seed: int) -> np.ndarray:
-    return np.asarray(trimesh.sample.sample_surface(mesh, n, seed=seed)[0])
 
 
 def posed(points: np.ndarray, seed: int) -> np.ndarray:
@@ -43,21 +34,21 @@ def chiral_cloud(seed: int = 0) -> np.ndarray:
 
 def test_sphere_distances_follow_sphere_line_picking():
     r = 2.5
-    pts = sphere(4000, r, seed=1) + np.array([1.0, -2.0, 0.5])
+    pts = sphere_points(4000, r, seed=1) + np.array([1.0, -2.0, 0.5])
     d = d2_distances(pts, pairs=20000, seed=3) * rms_radius(pts)  # back to millimetres
     # source: sphere line picking (Weisstein, MathWorld "Sphere Line Picking"): for two points
     # uniform on a sphere of radius r, p(d) = d / (2 r^2) on [0, 2r], so F(d) = d^2 / (4 r^2)
     cdf = lambda x: np.clip(x**2 / (4 * r * r), 0.0, 1.0)  # noqa: E731
     assert kstest(d, cdf).pvalue > 0.01  # reference: scipy.stats.kstest
     # both ways: the same test rejects points uniform in the solid ball and on a cube
-    ball = sphere(4000, r, seed=2) * np.random.default_rng(5).uniform(size=(4000, 1)) ** (1 / 3)
+    ball = sphere_points(4000, r, seed=2) * np.random.default_rng(5).uniform(size=(4000, 1)) ** (1 / 3)
     assert kstest(d2_distances(ball, pairs=20000, seed=3) * rms_radius(ball), cdf).pvalue < 1e-6
-    cube = surface(trimesh.creation.box([2 * r] * 3), 4000, seed=4)
+    cube = surface_points(trimesh.creation.box([2 * r] * 3), 4000, seed=4)
     assert kstest(d2_distances(cube, pairs=20000, seed=3) * rms_radius(cube), cdf).pvalue < 1e-6
 
 
 def test_sphere_histogram_matches_closed_form_bins():
-    pts = sphere(2000, 3.0, seed=7)
+    pts = sphere_points(2000, 3.0, seed=7)
     hist = d2_histogram(pts, bins=64, pairs=None)  # every pair once
     edges = np.linspace(0.0, D2_RANGE, 65)
     # the RMS radius of a sphere about its centre is its radius, so in RMS radii F(d) = d^2 / 4
@@ -117,11 +108,11 @@ def test_same_seed_same_pairs_other_seed_other_pairs():
 
 
 def test_cube_and_sphere_histograms_differ_clearly():
-    cube = surface(trimesh.creation.box([1.0, 1.0, 1.0]), 2000, seed=1)
-    ball = sphere(2000, seed=2)
+    cube = surface_points(trimesh.creation.box([1.0, 1.0, 1.0]), 2000, seed=1)
+    ball = sphere_points(2000, seed=2)
     h_cube, h_ball = d2_histogram(cube, pairs=None), d2_histogram(ball, pairs=None)
-    h_ball2 = d2_histogram(sphere(2000, seed=3), pairs=None)
-    h_cube2 = d2_histogram(posed(surface(trimesh.creation.box([1.0, 1.0, 1.0]), 2000, seed=4), 5), pairs=None)
+    h_ball2 = d2_histogram(sphere_points(2000, seed=3), pairs=None)
+    h_cube2 = d2_histogram(posed(surface_points(trimesh.creation.box([1.0, 1.0, 1.0]), 2000, seed=4), 5), pairs=None)
     between = np.abs(h_cube - h_ball).sum()
     within = max(np.abs(h_ball - h_ball2).sum(), np.abs(h_cube - h_cube2).sum())
     # from memory: Osada et al. 2002 plot D2 of simple solids; a sphere's rises linearly to its
@@ -143,13 +134,13 @@ def test_d2_rejects_bad_input():
     with pytest.raises(InputError, match="finite"):
         d2_histogram(np.array([[0.0, 0.0, np.nan], [1.0, 0.0, 0.0]]))
     with pytest.raises(InputError, match="bins should be a positive int, got 0"):
-        d2_histogram(sphere(10), bins=0)
+        d2_histogram(sphere_points(10), bins=0)
     with pytest.raises(InputError, match="pairs should be a positive int or None, got -3"):
-        d2_histogram(sphere(10), pairs=-3)
+        d2_histogram(sphere_points(10), pairs=-3)
     with pytest.raises(InputError, match=r"clouds should have shape \(M, N, 3\)"):
         d2_features(np.zeros((4, 3)))
     with pytest.raises(ShapesError, match=r"clouds\[1\] should have shape"):
-        d2_features([sphere(10), np.zeros((5, 4))])
+        d2_features([sphere_points(10), np.zeros((5, 4))])
 
 
 # -- the classifier ----------------------------------------------------------------------------
@@ -164,9 +155,10 @@ def toy_set(per_class: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
         size = gen.uniform(0.5, 20.0)
         s = int(gen.integers(1 << 30))
         shapes = [
-            sphere(256, size, seed=s),
-            surface(trimesh.creation.box(size * gen.uniform(0.8, 1.25, 3)), 256, s),
-            surface(trimesh.creation.cylinder(radius=size / 2, height=size * gen.uniform(1.8, 2.4), sections=48), 256, s),
+            sphere_points(256, size, seed=s),
+            surface_points(trimesh.creation.box(size * gen.uniform(0.8, 1.25, 3)), 256, s),
+            surface_points(trimesh.creation.cylinder(radius=size / 2, height=size * gen.uniform(1.8, 2.4), sections=48),
+                           256, s),
         ]
         for label, pts in enumerate(shapes):
             clouds.append(posed(pts, s + label))

@@ -1,23 +1,12 @@
 """The command line end to end on tiny settings, and its one-line answers to bad input."""
 
 import json
-from pathlib import Path
 
 import pytest
 import torch
 
+from conftest import DEMO, TINY_SAMPLE, one_error_line
 from shapes.cli import main
-
-REPO = Path(__file__).resolve().parent.parent
-DEMO = REPO / "demo_meshes"
-TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1",
-               "sample.twins=declared"]  # the demo's declared map; checking it is tested in test_parts_check_twins
-
-
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
 
 
 def test_no_verb_lists_verbs(capsys):

@@ -15,10 +15,10 @@ import pytest
 import torch
 
 from _browser import find_browser, open_page
+from conftest import DEMO, TINY_SAMPLE, one_error_line
 from shapes.cli import main
 from shapes.report import markdown_to_html
 from shapes.run import read_metrics
-from test_cli import DEMO, TINY_SAMPLE, one_error_line
 
 
 @pytest.fixture(scope="module")

@@ -1,6 +1,5 @@
 """Clean-up of scans: statistical outlier removal, RANSAC support-plane removal, the largest DBSCAN cluster."""
 
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -8,21 +7,17 @@ import trimesh
 from scipy.spatial.distance import cdist
 from sklearn.cluster import DBSCAN
 
+from conftest import demo_file, surface_points
 from shapes.data import CleanSettings, clean_points, neighbour_spacing
 from shapes.errors import ConfigError
-
-
-def surface(mesh, n, seed):
-    points, _ = trimesh.sample.sample_surface(mesh, n, seed=seed)  # reference: trimesh's area-weighted sampler
-    return np.asarray(points)
 
 
 def part_on_table(seed=0):
     """A 20 mm cylinder standing on a 120 mm square table (z = 0), a small box beside it, stray points above."""
     gen = np.random.default_rng(seed)
-    part = surface(trimesh.creation.cylinder(radius=10, height=20).apply_translation([0, 0, 10]), 3000, 1)
+    part = surface_points(trimesh.creation.cylinder(radius=10, height=20).apply_translation([0, 0, 10]), 3000, 1)
     table = np.c_[gen.uniform(-60, 60, (6000, 2)), gen.normal(0, 0.02, 6000)]
-    other = surface(trimesh.creation.box(extents=(8, 8, 8)).apply_translation([40, 40, 4]), 500, 2)
+    other = surface_points(trimesh.creation.box(extents=(8, 8, 8)).apply_translation([40, 40, 4]), 500, 2)
     strays = gen.uniform(-60, 60, (40, 3)) + [0, 0, 70]
     return part, table, other, strays
 
@@ -33,7 +28,7 @@ def only(**on):
 
 def test_statistical_outlier_removal_matches_its_definition_and_removes_injected_outliers():
     gen = np.random.default_rng(0)
-    body = surface(trimesh.creation.icosphere(subdivisions=3, radius=10), 2000, 0)
+    body = surface_points(trimesh.creation.icosphere(subdivisions=3, radius=10), 2000, 0)
     outliers = gen.uniform(-40, 40, (30, 3))
     outliers = outliers[np.linalg.norm(outliers, axis=1) > 20]  # clearly off the surface
     points = np.vstack([body, outliers])
@@ -66,14 +61,14 @@ def test_ransac_removes_the_table_under_a_part_and_keeps_the_part():
 
 def test_a_large_face_of_the_part_itself_is_kept():
     # a washer: its faces carry most points but lie within its own outline; nothing to remove
-    washer = surface(trimesh.creation.annulus(r_min=5, r_max=12, height=2), 3000, 1)
+    washer = surface_points(trimesh.creation.annulus(r_min=5, r_max=12, height=2), 3000, 1)
     result = clean_points(washer, only(support_plane=True), seed=0)
     assert len(result.keep) == len(washer) and "kept" in result.steps[0]["why"]
 
 
 def test_dbscan_keeps_the_largest_cluster():
-    big = surface(trimesh.creation.icosphere(subdivisions=3, radius=10), 2000, 0)
-    small = surface(trimesh.creation.icosphere(subdivisions=3, radius=4), 400, 1) + [40, 0, 0]
+    big = surface_points(trimesh.creation.icosphere(subdivisions=3, radius=10), 2000, 0)
+    small = surface_points(trimesh.creation.icosphere(subdivisions=3, radius=4), 400, 1) + [40, 0, 0]
     points = np.vstack([small, big])
     s = only(cluster=True)
     result = clean_points(points, s)
@@ -102,8 +97,7 @@ def test_defaults_leave_a_clean_single_view_scan_nearly_whole():
     assert CleanSettings().stray_points and not CleanSettings().support_plane and not CleanSettings().cluster
     from shapes.data import read_mesh, scan_view
 
-    mesh = read_mesh(Path(__file__).parents[1] / "demo_meshes" / "bolted_flange" /
-                     sorted(p.name for p in (Path(__file__).parents[1] / "demo_meshes" / "bolted_flange").glob("*.ply"))[0])
+    mesh = read_mesh(demo_file("bolted_flange"))
     points, _ = scan_view(mesh, 3000, seed=1)
     assert len(clean_points(points, seed=0).keep) > 0.97 * len(points)
 

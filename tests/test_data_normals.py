@@ -6,6 +6,7 @@ import pytest
 import trimesh
 from scipy.spatial.transform import Rotation
 
+from conftest import sphere_points
 from shapes.data import estimate_normals, sample_surface
 from shapes.errors import InputError
 
@@ -19,8 +20,7 @@ def angle_deg(normals, truth):
 
 
 def sphere(n=4000, seed=0):
-    p = np.random.default_rng(seed).normal(size=(n, 3))
-    p *= RADIUS / np.linalg.norm(p, axis=1, keepdims=True)
+    p = sphere_points(n, RADIUS, seed)
     return p, p / RADIUS  # closed form: the outward normal of a sphere at p is p / r
 
 

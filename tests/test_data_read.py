@@ -6,14 +6,9 @@ import numpy as np
 import pytest
 import trimesh
 
+from conftest import one_line_naming
 from shapes.data import MESH_SUFFIXES, MIN_SCAN_POINTS, SCAN_MESH_POINTS, read_mesh, read_scan
 from shapes.errors import MeshError
-
-
-def assert_one_line_naming(exc_info, path):
-    message = str(exc_info.value)
-    assert "\n" not in message
-    assert str(path) in message
 
 
 @pytest.fixture
@@ -70,7 +65,7 @@ def test_missing_file(tmp_path):
     path = tmp_path / "nope.stl"
     with pytest.raises(MeshError, match="not found") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
 
 
 def test_unknown_suffix_lists_supported(tmp_path):
@@ -78,7 +73,7 @@ def test_unknown_suffix_lists_supported(tmp_path):
     path.write_bytes(b"PK\x03\x04")
     with pytest.raises(MeshError, match="unsupported suffix") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
     assert all(s in str(info.value) for s in MESH_SUFFIXES)
 
 
@@ -88,19 +83,21 @@ def test_empty_file(tmp_path, suffix):
     path.write_bytes(b"")
     with pytest.raises(MeshError, match="empty") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
 
 
 def test_truncated_binary_stl(tmp_path, part):
     path = tmp_path / "cut.stl"
     part.export(path, file_type="stl")
     data = path.read_bytes()
-    # source: binary STL layout, 80-byte header + uint32 count + 50 bytes per triangle (common practice)
+    # from memory: the binary STL layout of the StereoLithography Interface Specification, an 80-byte
+    # header, a little-endian uint32 triangle count, then 50 bytes per triangle; trimesh's writer is checked
+    # against it here
     assert len(data) == 84 + 50 * struct.unpack("<I", data[80:84])[0]
     path.write_bytes(data[:-120])
     with pytest.raises(MeshError, match=f"header says {len(part.faces)} triangles") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
     path.write_bytes(data[:50])  # not even a full header
     with pytest.raises(MeshError, match="truncated"):
         read_mesh(path)
@@ -115,7 +112,7 @@ def test_nan_vertices(tmp_path, suffix):
     trimesh.Trimesh(vertices, box.faces, process=False).export(path)
     with pytest.raises(MeshError, match="NaN or inf") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
 
 
 def test_zero_area_mesh(tmp_path):
@@ -123,7 +120,7 @@ def test_zero_area_mesh(tmp_path):
     path.write_text("v 0 0 0\nv 1 0 0\nv 2 0 0\nv 3 0 0\nf 1 2 3\nf 2 3 4\n")  # collinear corners
     with pytest.raises(MeshError, match="zero surface area") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
 
 
 def test_no_faces(tmp_path):
@@ -131,7 +128,7 @@ def test_no_faces(tmp_path):
     path.write_text("v 0 0 0\nv 1 0 0\nv 0 1 0\n")
     with pytest.raises(MeshError, match="no faces") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
 
 
 @pytest.mark.parametrize("name, content", [
@@ -144,7 +141,7 @@ def test_unparsable_file_is_wrapped(tmp_path, name, content):
     path.write_bytes(content)
     with pytest.raises(MeshError, match="could not be parsed") as info:
         read_mesh(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
     assert info.value.__cause__ is not None  # the parser's own error is kept as the cause
 
 
@@ -194,7 +191,7 @@ def test_scan_errors(tmp_path):
     np.save(path, cloud(MIN_SCAN_POINTS - 1))
     with pytest.raises(MeshError, match=f"has {MIN_SCAN_POINTS - 1} points; need at least {MIN_SCAN_POINTS}") as info:
         read_scan(path)
-    assert_one_line_naming(info, path)
+    one_line_naming(info, path)
     np.save(path, cloud(MIN_SCAN_POINTS))
     assert read_scan(path).shape == (MIN_SCAN_POINTS, 3)
 

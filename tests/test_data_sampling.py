@@ -6,6 +6,7 @@ import scipy.stats
 import trimesh
 from scipy.spatial.distance import pdist
 
+from conftest import surface_distance
 from shapes.data import (
     farthest_point_subsample,
     normalise,
@@ -14,18 +15,6 @@ from shapes.data import (
     scan_view,
 )
 from shapes.errors import InputError, MeshError
-
-
-def surface_distance(mesh, points):
-    """Distance of each point to the mesh and the index of the nearest face (brute force).
-
-    reference: trimesh.triangles.closest_point on every (point, triangle) pair.
-    """
-    tri = np.asarray(mesh.triangles)
-    n, f = len(points), len(tri)
-    closest = trimesh.triangles.closest_point(np.tile(tri, (n, 1, 1)), np.repeat(points, f, axis=0))
-    dist = np.linalg.norm(closest - np.repeat(points, f, axis=0), axis=1).reshape(n, f)
-    return dist.min(axis=1), dist.argmin(axis=1)
 
 
 @pytest.fixture
@@ -65,7 +54,8 @@ def test_uniform_inside_a_triangle():
     points, _ = sample_surface(mesh, 4000, seed=3)
     bary = trimesh.triangles.points_to_barycentric(np.repeat(tri[None], len(points), axis=0), points)
     assert bary.min() >= -1e-9
-    # source: uniform on a triangle = Dirichlet(1, 1, 1) barycentrics; each marginal is Beta(1, 2)
+    # closed form: the points of a triangle whose k-th barycentric exceeds x fill a similar triangle scaled by
+    # 1 - x, so for a uniform point P(b_k <= x) = 1 - (1 - x)^2, the Beta(1, 2) CDF (reference: scipy.stats.beta)
     for k in range(3):
         assert scipy.stats.kstest(bary[:, k], scipy.stats.beta(1, 2).cdf).pvalue > 0.001
 
@@ -220,7 +210,7 @@ def test_scan_of_sphere_is_one_hemisphere():
     points, _ = scan_view(sphere, 1500, view_dir=[0, 0, -1], seed=1)  # camera above, looking down
     assert points[:, 2].min() > -0.01  # only the upper half is seen (facet sag < 0.01)
     # closed form: an orthographic grid is uniform over the projected disc, so r^2 = x^2 + y^2 is
-    # uniform on [0, 1] (source: area of a disc of radius r is proportional to r^2)
+    # uniform on [0, 1] (closed form: the area of a disc of radius r is proportional to r^2)
     r2 = np.sum(points[:, :2] ** 2, axis=1) / np.max(np.sum(sphere.vertices[:, :2] ** 2, axis=1))
     assert scipy.stats.kstest(r2, scipy.stats.uniform(0, 1).cdf).pvalue > 0.001
     # and the other side is what a camera below sees

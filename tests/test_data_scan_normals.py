@@ -1,14 +1,12 @@
 """Normals estimated on single-view scans, as a bare x y z scan file gives them, against the mesh."""
 
 import json
-from pathlib import Path
 
 import numpy as np
 import pytest
 
+from conftest import DEMO, demo_file
 from shapes.data import estimate_normals, farthest_point_subsample, normalise, read_mesh, scan_view
-
-DEMO = Path(__file__).parents[1] / "demo_meshes"
 
 
 def _scan(mesh, seed, points=512):
@@ -54,7 +52,7 @@ def test_single_view_beats_propagation_on_a_coil_spring():
 
 
 def test_single_view_orientation_turns_and_reflects_with_the_cloud():
-    mesh = read_mesh(DEMO / "bolted_flange" / sorted(p.name for p in (DEMO / "bolted_flange").glob("*.ply"))[0])
+    mesh = read_mesh(demo_file("bolted_flange"))
     cloud, _ = _scan(mesh, 0)
     base, _ = estimate_normals(cloud, k=16, orientation="single-view")
     gen = np.random.default_rng(3)

@@ -8,6 +8,7 @@ import trimesh
 from scipy.spatial.transform import Rotation
 
 import shapes.data._scanfile as scanfile
+from conftest import one_line_naming
 from shapes.data import UNITS, check_spread, orient_toward, read_points
 from shapes.errors import InputError, MeshError
 
@@ -23,12 +24,6 @@ def write_e57(path, scans):
         for points, q, t in scans:
             e57.write_scan_raw({"cartesianX": points[:, 0], "cartesianY": points[:, 1], "cartesianZ": points[:, 2]},
                                rotation=np.asarray(q, dtype=float), translation=np.asarray(t, dtype=float))
-
-
-def one_line(exc_info, path):
-    message = str(exc_info.value)
-    assert "\n" not in message and str(path) in message
-    return message
 
 
 # ---------------------------------------------------------------- E57
@@ -72,7 +67,7 @@ def test_bad_e57_gives_one_line(tmp_path, content, needle):
     path.write_bytes(content)
     with pytest.raises(MeshError, match=needle) as info:
         read_points(path)
-    one_line(info, path)
+    one_line_naming(info, path)
 
 
 def test_truncated_e57_gives_one_line(tmp_path):
@@ -81,7 +76,7 @@ def test_truncated_e57_gives_one_line(tmp_path):
     (tmp_path / "cut.e57").write_bytes(data[: len(data) // 2])
     with pytest.raises(MeshError, match="could not be read as E57") as info:
         read_points(tmp_path / "cut.e57")
-    one_line(info, tmp_path / "cut.e57")
+    one_line_naming(info, tmp_path / "cut.e57")
 
 
 # ---------------------------------------------------------------- PLY
@@ -109,7 +104,8 @@ def test_ply_ascii_and_binary_with_and_without_normals(tmp_path):
     binary = read_points(tmp_path / "binary.ply")
     np.testing.assert_allclose(binary.points, points, rtol=1e-6)
     assert binary.normals is None and binary.viewpoint is None
-    # big-endian, written by hand: the PLY format allows either byte order
+    # big-endian, written by hand: the PLY format allows either byte order (source: Turk 1994, "The PLY
+    # Polygon File Format": binary_little_endian and binary_big_endian)
     header = (f"ply\nformat binary_big_endian 1.0\nelement vertex {len(points)}\nproperty float x\n"
               "property float y\nproperty float z\nend_header\n").encode()
     (tmp_path / "big.ply").write_bytes(header + points.astype(">f4").tobytes())
@@ -151,7 +147,7 @@ def test_bad_ply_gives_one_line(tmp_path, name, make, needle):
         path.write_text(ply_text(points, comment="comment viewpoint up high\n"))
     with pytest.raises(MeshError, match=needle) as info:
         read_points(path)
-    one_line(info, path)
+    one_line_naming(info, path)
 
 
 # ---------------------------------------------------------------- text tables
@@ -189,7 +185,7 @@ def test_comma_separated_decimal_commas_are_refused_not_misread(tmp_path):
     path.write_text("\n".join(",".join(f"{v:.4f}".replace(".", ",") for v in r) for r in cloud() * 1000))
     with pytest.raises(MeshError, match="decimal commas") as info:
         read_points(path)
-    one_line(info, path)
+    one_line_naming(info, path)
 
 
 def test_six_columns_are_normals_only_when_they_are(tmp_path):
@@ -224,7 +220,7 @@ def test_bad_text_gives_one_line(tmp_path, name, content, needle):
     path.write_text(content)
     with pytest.raises(MeshError, match=None) as info:
         read_points(path)
-    assert needle in one_line(info, path)
+    assert needle in one_line_naming(info, path)
 
 
 def test_binary_and_non_utf8_text_are_refused(tmp_path):
@@ -292,7 +288,7 @@ def test_files_over_the_size_limit_are_refused_before_reading(tmp_path, monkeypa
     monkeypatch.setattr(scanfile, "MAX_FILE_BYTES", 1024)
     with pytest.raises(MeshError, match="at most 0 GiB is read") as info:
         read_points(tmp_path / "a.npy")
-    one_line(info, tmp_path / "a.npy")
+    one_line_naming(info, tmp_path / "a.npy")
 
 
 # ---------------------------------------------------------------- degenerate clouds

@@ -6,7 +6,6 @@ brute-force ray-triangle intersection, closed forms for the sphere).
 """
 
 import math
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,38 +13,23 @@ import scipy.optimize
 import scipy.stats
 import trimesh
 
+from conftest import demo_file, surface_distance
 from shapes.data import SCAN_LABELS, ScannerSettings, ScanResult, read_mesh, ray_backend, scan_part, scan_view
 from shapes.errors import ConfigError, InputError, ShapesError
 
-DEMO = Path(__file__).parents[1] / "demo_meshes"
 SURFACE, SUPPORT, MIXED, OUTLIER = (SCAN_LABELS.index(k) for k in ("surface", "support", "mixed", "outlier"))
 CLEAN = dict(noise_base=0.0, noise_range=0.0, outlier_share=0.0, mixed_pixels=0.0)
 NO_DROPOUT = dict(grazing_start=90.0, grazing_cutoff=90.0)
 
 
 def demo(name):
-    return read_mesh(next(iter(sorted((DEMO / name).glob("*.ply")))))
+    return read_mesh(demo_file(name))
 
 
 def bounding(mesh):
     """Centre of the bounding box and the largest vertex distance from it (the scanner's unit)."""
     centre = np.asarray(mesh.bounds).mean(axis=0)
     return centre, float(np.linalg.norm(np.asarray(mesh.vertices) - centre, axis=1).max())
-
-
-def surface_distance(mesh, points, chunk=40):
-    """Distance of each point to the mesh, by brute force over every (point, face) pair.
-
-    reference: trimesh.triangles.closest_point (trimesh.proximity needs rtree, not installed here).
-    """
-    tri = np.asarray(mesh.triangles)
-    out = []
-    for start in range(0, len(points), chunk):
-        block = points[start:start + chunk]
-        n, f = len(block), len(tri)
-        closest = trimesh.triangles.closest_point(np.tile(tri, (n, 1, 1)), np.repeat(block, f, axis=0))
-        out.append(np.linalg.norm(closest - np.repeat(block, f, axis=0), axis=1).reshape(n, f).min(axis=1))
-    return np.concatenate(out) if out else np.zeros(0)
 
 
 def first_hit_distance(mesh, origin, directions):
@@ -112,7 +96,7 @@ def test_noise_free_surface_points_lie_on_their_faces(name, sphere):
         # mesh is at most this), and on every face for a subset
         on_face = trimesh.triangles.closest_point(mesh.triangles[result.faces], result.points)
         assert np.linalg.norm(on_face - result.points, axis=1).max() <= 1e-6 * radius
-        assert surface_distance(mesh, result.points[:60]).max() <= 1e-6 * radius
+        assert surface_distance(mesh, result.points[:60])[0].max() <= 1e-6 * radius
         np.testing.assert_array_equal(result.normals, mesh.face_normals[result.faces])
 
 
@@ -125,11 +109,15 @@ def test_noisy_surface_points_lie_within_their_noise(name, sphere):
     surface = result.labels == SURFACE
     own = trimesh.triangles.closest_point(mesh.triangles[result.faces[surface]], result.points[surface])
     own = np.linalg.norm(own - result.points[surface], axis=1)  # reference: trimesh.triangles.closest_point
-    # source: a Gaussian exceeds 5 standard deviations with probability 5.7e-7 (scipy.stats.norm.sf(5) * 2)
+    # reference: scipy.stats.norm: a Gaussian lies beyond 5 standard deviations with probability 5.7e-7, so
+    # among these few thousand points one does with probability about 2e-3 (and this scan is seeded)
+    assert 2.0 * scipy.stats.norm.sf(5.0) == pytest.approx(5.7e-7, rel=0.01)
     assert np.all(own <= 5.0 * result.sigma[surface] + 1e-9 * radius)
-    dist = surface_distance(mesh, result.points[surface][:400])
+    dist, _ = surface_distance(mesh, result.points[surface][:400])
     assert np.all(dist <= own[:400] + 1e-12)
     # and the noise is really there: the mean distance is near the mean |N(0, sigma)| = sigma * sqrt(2/pi) or less
+    # (reference: scipy.stats.halfnorm, the law of |N(0, 1)|)
+    assert scipy.stats.halfnorm.mean() == pytest.approx(math.sqrt(2.0 / math.pi), rel=1e-12)
     # (a ray crosses a surface at an angle, so the distance is at most the depth error)
     assert dist.mean() > 0.2 * result.sigma[surface][:400].mean()
     assert dist.mean() <= 1.1 * math.sqrt(2.0 / math.pi) * result.sigma[surface][:400].mean()
@@ -203,9 +191,10 @@ def test_same_camera_other_seed_sees_other_points(sphere):
 def cap_share(d, cutoff_deg=90.0):
     """Share of a sphere's area a camera at d radii from its centre measures, incidence up to the cutoff.
 
-    source: spherical cap area 2 pi r h; the tangent cone from distance D touches the sphere where
-    cos(phi) = r / D, so h = r - r^2 / D and the share is (1 - r/D) / 2. With a cut-off on the incidence
-    theta, cos(theta) = (D cos(phi) - r) / sqrt(D^2 - 2 D r cos(phi) + r^2) is solved for phi
+    closed form (Archimedes): a spherical cap of height h has area 2 pi r h; the tangent cone from distance
+    D touches the sphere where cos(phi) = r / D, so h = r - r^2 / D and the share is (1 - r/D) / 2. With a
+    cut-off on the incidence theta, cos(theta) = (D cos(phi) - r) / sqrt(D^2 - 2 D r cos(phi) + r^2) is
+    solved for phi
     (reference: scipy.optimize.brentq).
     """
     if cutoff_deg >= 90.0:
@@ -296,10 +285,10 @@ def test_outlier_share_matches_the_setting(share, sphere):
         _, radius = bounding(sphere)
         towards = result.viewpoints[result.view[strays]] - result.points[strays]
         ranges = np.linalg.norm(towards, axis=1)
-        slack = 5 * result.sigma[strays]  # source: Gaussian tail, as above
+        slack = 5 * result.sigma[strays]  # reference: scipy.stats.norm tail, as above
         assert np.all(ranges >= 2.0 * radius - slack) and np.all(ranges <= 4.0 * radius + slack)
         np.testing.assert_allclose(result.normals[strays], towards / ranges[:, None], atol=1e-9)
-        dist = surface_distance(sphere, result.points[strays])
+        dist, _ = surface_distance(sphere, result.points[strays])
         assert np.median(dist) > 0.05 * radius  # they are strays, not surface points
 
 
@@ -311,7 +300,7 @@ def test_mixed_pixels_lie_behind_the_silhouette(sphere):
     cam = result.viewpoints[0]
     towards = cam - result.points[mixed]
     # on the ray of a silhouette pixel: the angle from the optical axis is the tangent cone's asin(r / D)
-    # (source: a tangent from a point at distance D to a circle of radius r), within a few pixels
+    # (closed form: a tangent from a point at distance D to a circle of radius r), within a few pixels
     off_axis = np.degrees(np.arccos(np.clip(-towards @ (-cam) / (np.linalg.norm(towards, axis=1) * 6.0), -1, 1)))
     pixel = 40.0 / 160
     assert np.all(np.abs(off_axis - math.degrees(math.asin(1.0 / 3.0))) <= 2.5 * pixel)
@@ -337,13 +326,13 @@ def test_support_plane_points_lie_on_the_table():
     np.testing.assert_allclose(result.points[table, 2], z0, atol=1e-9 * radius)  # on the plane z = min z
     np.testing.assert_array_equal(result.normals[table], np.tile([0.0, 0.0, 1.0], (table.sum(), 1)))
     assert np.hypot(*(result.points[table, :2] - centre[:2]).T).max() <= 2.0 * radius + 1e-9
-    # upright cameras: 50 degrees above the horizontal, as asked (source: elevation = asin(dz / |d|))
+    # upright cameras: 50 degrees above the horizontal, as asked (closed form: elevation = asin(dz / |d|))
     rel = result.viewpoints - centre
     np.testing.assert_allclose(np.degrees(np.arcsin(rel[:, 2] / np.linalg.norm(rel, axis=1))), 50.0, atol=1e-9)
     # noisy table points stay within their noise of the plane
     noisy = scan_part(mesh, 3000, ScannerSettings(support_plane=True, placement="upright"), seed=9)
     t = noisy.labels == SUPPORT
-    assert np.all(np.abs(noisy.points[t, 2] - z0) <= 5 * noisy.sigma[t])  # source: Gaussian tail, as above
+    assert np.all(np.abs(noisy.points[t, 2] - z0) <= 5 * noisy.sigma[t])  # reference: scipy.stats.norm tail, as above
     # the table may be rendered yet dropped from the result
     dropped = scan_part(mesh, 3000, ScannerSettings(support_plane=True, placement="upright", keep_support=False),
                         seed=9)

@@ -10,13 +10,12 @@ import numpy as np
 import pytest
 import torch
 
+from conftest import DEMO, one_error_line
 from shapes.cli import main
 from shapes.data import load_split
 from shapes.run import load_classifier
 from shapes.export import EXPORTED, lattice_cloud
 
-REPO = Path(__file__).resolve().parent.parent
-DEMO = REPO / "demo_meshes"
 pytestmark = pytest.mark.filterwarnings("ignore:`torch.jit:DeprecationWarning")
 
 TORCH_SITE = str(Path(torch.__file__).resolve().parent.parent)  # torch and its dependencies, not shapes' .pth
@@ -111,12 +110,6 @@ def test_another_point_count_and_ties_on_a_lattice(tiny, tmp_path):
             assert (loaded(cloud) - model(x)).abs().max() <= 1e-5
     with pytest.raises(RuntimeError):
         loaded(torch.randn(1, 64, 3))  # the point count is part of the file
-
-
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
 
 
 @pytest.mark.parametrize("argv,needle", [

@@ -95,7 +95,9 @@ def test_reliability_curve_matches_scikit_learn():
 
 def test_pose_consistency_hand_worked():
     votes = np.array([[1, 1, 1], [2, 2, 0], [3, 3, 3], [0, 1, 2]])
-    assert pose_consistency(votes) == 0.5  # rows 0 and 2 agree across the three poses: 2/4, common practice
+    # hand-worked from the definition in pose_consistency's docstring (the share of parts with one answer
+    # under every pose): rows 0 and 2 agree across the three poses, 2 of 4
+    assert pose_consistency(votes) == 0.5
     assert pose_consistency(np.array([["nut", "nut"], ["nut", "washer"], ["gear", "gear"]])) == pytest.approx(2 / 3)
     assert pose_consistency(np.zeros((5, 8), dtype=int)) == 1.0
     # both ways: one changed vote in one pose breaks that part's consistency

@@ -398,7 +398,7 @@ def test_pulley_grooves_follow_the_belt_section(section, b1, depth, deg):
 def test_catalog_holes_are_iso273_clearance_holes():
     medium = {3.4, 4.5, 5.5, 6.6, 9.0, 11.0, 13.5, 17.5}  # from memory (ISO 273, medium series, M3..M16)
     assert set(CLEARANCE_HOLE_ISO273.values()) == medium
-    assert CLEARANCE_HOLE_ISO273["M6"] == 6.6 and CLEARANCE_HOLE_ISO273["M8"] == 9.0  # common practice
+    assert CLEARANCE_HOLE_ISO273["M6"] == 6.6 and CLEARANCE_HOLE_ISO273["M8"] == 9.0  # from memory (ISO 273, medium)
     spec = {c["name"]: c for c in demo_catalog_spec(0)}
     for name in ("bolted_flange", "bracket_right"):
         assert {i["params"]["hole_d"] for i in spec[name]["instances"]} <= medium

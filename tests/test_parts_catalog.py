@@ -5,19 +5,18 @@ from __future__ import annotations
 
 import json
 import re
-from pathlib import Path
 
 import numpy as np
 import pytest
 import trimesh
 
+from conftest import DEMO
 from shapes.data import read_catalog, split_groups
 from shapes.errors import ConfigError, DataError
 from shapes.parts import (
     CATALOG_TITLE, FAMILIES, MAX_PER_CLASS, demo_catalog_spec, describe_instances, summarize_catalog, write_demo_catalog,
 )
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_meshes"
 PER_CLASS = 12  # the committed catalog: 16 classes x 12 instances
 
 

@@ -5,29 +5,16 @@ from __future__ import annotations
 
 import functools
 import json
-from pathlib import Path
 
 import manifold3d as mf
 import numpy as np
 import pytest
 import trimesh
-from scipy.spatial.transform import Rotation
 
+from conftest import DEMO, posed_mesh as posed
 from shapes.errors import DataError, InputError
 from shapes.parts import TwinReport, check_twins, mirror_mesh
 from shapes.parts._mesh import to_trimesh
-
-DEMO = Path(__file__).resolve().parents[1] / "demo_meshes"
-
-
-def posed(mesh: trimesh.Trimesh, seed: int) -> trimesh.Trimesh:
-    """``mesh`` turned by a Haar-random rotation (scipy) and shifted."""
-    out = mesh.copy()
-    t = np.eye(4)
-    t[:3, :3] = Rotation.random(random_state=seed).as_matrix()  # reference: scipy Rotation.random
-    t[:3, 3] = [5.0, -3.0, 9.0]
-    out.apply_transform(t)
-    return out
 
 
 def helix_turn(mesh: trimesh.Trimesh) -> float:

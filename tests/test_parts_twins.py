@@ -8,8 +8,8 @@ import functools
 import numpy as np
 import pytest
 import trimesh
-from scipy.spatial.transform import Rotation
 
+from conftest import posed_mesh as posed
 from shapes.errors import InputError
 from shapes.parts import (
     DEFAULT_TOL,
@@ -40,16 +40,6 @@ PICK = {"stud_rh": min(
 def instance(name: str, k: int = 0) -> trimesh.Trimesh:
     c = SPEC[name]
     return build_part(c["family"], **c["instances"][k]["params"])
-
-
-def posed(mesh: trimesh.Trimesh, seed: int) -> trimesh.Trimesh:
-    """``mesh`` turned by a Haar-random rotation (scipy) and shifted."""
-    out = mesh.copy()
-    t = np.eye(4)
-    t[:3, :3] = Rotation.random(random_state=seed).as_matrix()  # reference: scipy Rotation.random
-    t[:3, 3] = [12.0, -7.0, 3.0]
-    out.apply_transform(t)
-    return out
 
 
 def test_catalog_has_four_handed_pairs_and_eight_achiral_classes():

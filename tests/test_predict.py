@@ -10,6 +10,7 @@ import torch
 import trimesh
 from scipy.spatial.transform import Rotation
 
+from conftest import DEMO, demo_file, one_error_line
 from shapes.backbones import Classifier, build_backbone
 from shapes.cli import main
 from shapes.data import CleanSettings, load_split, read_meta
@@ -20,7 +21,6 @@ from shapes.seeding import torch_generator
 from shapes.run import save_checkpoint
 from shapes.train import TrainSettings, train_classifier
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 CATALOG = json.loads((DEMO / "catalog.json").read_text())
 CLASSES = [c["name"] for c in CATALOG["classes"]]
 TWIN = {c["name"]: c["twin"] for c in CATALOG["classes"]}
@@ -62,16 +62,6 @@ def tiny(tmp_path_factory):
     return {"root": root, "data": data, "e3": e3, "se3": se3, "one_each": one_each}
 
 
-def first_mesh(name: str) -> Path:
-    return sorted((DEMO / name).iterdir())[0]
-
-
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
-
-
 def test_every_row_is_a_distribution_over_the_catalog(tiny):
     result = predict_files(tiny["e3"], tiny["one_each"], poses=4, seed=0)
     assert [r["file"].split("/")[0] for r in result["results"]] == sorted(CLASSES)
@@ -111,7 +101,7 @@ def test_mesh_is_sampled_exactly_like_the_training_shards(tiny):
 
 def test_threshold_is_the_numpy_quantile_of_validation_scores(tiny):
     accept, poses = 0.8, 3
-    result = predict_files(tiny["e3"], first_mesh("hex_nut"), poses=poses, accept=accept, seed=5)
+    result = predict_files(tiny["e3"], demo_file("hex_nut"), poses=poses, accept=accept, seed=5)
     model, meta = load_classifier(tiny["e3"])
     val = load_split(tiny["data"], "val")
     rotations = random_poses("any", poses, generator=torch_generator(5))
@@ -130,7 +120,7 @@ def test_threshold_is_the_numpy_quantile_of_validation_scores(tiny):
 
 
 def test_an_invariant_backbone_gives_the_same_answer_in_any_pose_and_mirror_image(tiny, tmp_path):
-    mesh = trimesh.load(first_mesh("spur_gear"), process=False)
+    mesh = trimesh.load(demo_file("spur_gear"), process=False)
     turned = mesh.copy()
     rot = Rotation.random(random_state=3).as_matrix()  # reference: scipy's uniform random rotation
     turned.vertices = mesh.vertices @ rot.T + np.array([40.0, -7.0, 3.0])
@@ -187,7 +177,7 @@ def test_a_non_part_comes_out_unknown_when_the_threshold_is_high(tiny, tmp_path)
 
 
 def test_point_files_are_thinned_to_the_training_count_and_keep_their_normals(tiny, tmp_path):
-    mesh = trimesh.load(first_mesh("bushing"), process=False)
+    mesh = trimesh.load(demo_file("bushing"), process=False)
     points, faces = trimesh.sample.sample_surface(mesh, 500, seed=0)  # reference: trimesh's sampler
     np.savetxt(tmp_path / "dense.xyz", points)
     trimesh.PointCloud(points).export(tmp_path / "bare.ply")
@@ -269,8 +259,8 @@ def test_estimated_normals_follow_the_run_k_and_orientation_when_recorded():
 
 
 def test_same_seed_same_answer(tiny):
-    a = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
-    b = predict_files(tiny["e3"], first_mesh("v_pulley"), poses=3, seed=7)
+    a = predict_files(tiny["e3"], demo_file("v_pulley"), poses=3, seed=7)
+    b = predict_files(tiny["e3"], demo_file("v_pulley"), poses=3, seed=7)
     assert a == b  # reference: shapes.seeding convention, same seed gives the same result
 
 
@@ -306,7 +296,7 @@ def _bad_inputs(tmp: Path) -> None:
     np.savez(tmp / "no_points.npz", cloud=np.zeros((40, 3)))
     (tmp / "notes.doc").write_text("hello")
     (tmp / "mixed").mkdir()
-    (tmp / "mixed" / "good.ply").write_bytes(first_mesh("hex_nut").read_bytes())
+    (tmp / "mixed" / "good.ply").write_bytes(demo_file("hex_nut").read_bytes())
     (tmp / "mixed" / "broken.stl").write_bytes(b"")
 
 
@@ -444,7 +434,7 @@ def test_every_bad_scan_gets_its_own_error_row_and_the_rest_are_classified(tiny,
     # a decimal-comma file with ';' between the columns reads (common practice in locales that write 3,2)
     (folder / "good_semicolon.csv").write_text("x;y;z\n" + "\n".join(
         ";".join(f"{v:.4f}".replace(".", ",") for v in r) for r in _cloud(300, seed=1)))
-    (folder / "hex_nut.ply").write_bytes(first_mesh("hex_nut").read_bytes())
+    (folder / "hex_nut.ply").write_bytes(demo_file("hex_nut").read_bytes())
     monkeypatch.chdir(tmp_path)
     assert main(["predict", f"run={tiny['e3'].parent}", f"predict.input={folder}", "predict.poses=2"]) == 1
     captured = capsys.readouterr()

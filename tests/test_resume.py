@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 import torch
 
+from conftest import one_error_line
 from shapes.backbones import build_backbone
 from shapes.cli import main
 from shapes.errors import ConfigError
@@ -35,11 +36,6 @@ sys.exit(main(sys.argv[1:]))
 """
 
 
-@pytest.fixture
-def tiny_data(tiny_surface_data):
-    return tiny_surface_data
-
-
 def _shapes(args: list[str], cwd: Path, code: str | None = None) -> subprocess.CompletedProcess:
     argv = [sys.executable, "-c", code, *args] if code else [sys.executable, "-m", "shapes", *args]
     return subprocess.run(argv, cwd=cwd, capture_output=True, text=True, timeout=600)
@@ -54,12 +50,12 @@ def _bitwise_equal(a: dict, b: dict) -> bool:
 
 
 @pytest.mark.slow
-def test_a_run_killed_mid_epoch_and_resumed_ends_bitwise_equal_to_one_never_stopped(tiny_data, tmp_path,
+def test_a_run_killed_mid_epoch_and_resumed_ends_bitwise_equal_to_one_never_stopped(tiny_surface_data, tmp_path,
                                                                                    capsys):
     # reference: the same command run to the end in one process (CPU, one thread, deterministic kernels)
-    whole = _shapes(["train", f"data={tiny_data}", *TRAIN, "hydra.run.dir=whole"], tmp_path)
+    whole = _shapes(["train", f"data={tiny_surface_data}", *TRAIN, "hydra.run.dir=whole"], tmp_path)
     assert whole.returncode == 0, whole.stderr
-    killed = _shapes(["train", f"data={tiny_data}", *TRAIN, "hydra.run.dir=cut"], tmp_path, KILLED_AT_STEP)
+    killed = _shapes(["train", f"data={tiny_surface_data}", *TRAIN, "hydra.run.dir=cut"], tmp_path, KILLED_AT_STEP)
     assert killed.returncode == -9, killed.stderr  # SIGKILL: no handler ran
     cut = tmp_path / "cut"
     state = torch.load(cut / RESUME, weights_only=True)
@@ -83,15 +79,9 @@ def test_a_run_killed_mid_epoch_and_resumed_ends_bitwise_equal_to_one_never_stop
     assert not _bitwise_equal(state["model"], _weights(cut / RESUME, "model"))
 
 
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
-
-
-def test_resuming_a_complete_run_or_with_other_options_gives_one_line(tiny_data, tmp_path, monkeypatch, capsys):
+def test_resuming_a_complete_run_or_with_other_options_gives_one_line(tiny_surface_data, tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
-    assert main(["train", f"data={tiny_data}", "backbone=distance", "backbone.hidden=8", "backbone.k=4",
+    assert main(["train", f"data={tiny_surface_data}", "backbone=distance", "backbone.hidden=8", "backbone.k=4",
                  "backbone.layers=1", "train.epochs=1", "train.batch_size=32", "train.threads=1",
                  "hydra.run.dir=done"]) == 0
     capsys.readouterr()
@@ -105,21 +95,21 @@ def test_resuming_a_complete_run_or_with_other_options_gives_one_line(tiny_data,
     (tmp_path / "empty").mkdir()
     assert main(["train", "resume=empty"]) == 2
     assert f"has no {RESUME}" in one_error_line(capsys)
-    assert main(["train", f"data={tiny_data}", "train.save_every=0"]) == 2
+    assert main(["train", f"data={tiny_surface_data}", "train.save_every=0"]) == 2
     assert "train.save_every should be" in one_error_line(capsys)
 
 
-def test_the_python_call_refuses_a_resume_with_other_settings(tiny_data, tmp_path):
+def test_the_python_call_refuses_a_resume_with_other_settings(tiny_surface_data, tmp_path):
     backbone = build_backbone("distance", hidden=8, k=4, layers=1)
     settings = TrainSettings(epochs=2, batch_size=16, threads=1, save_every=3)
-    train_classifier(backbone, tiny_data, tmp_path, settings)
+    train_classifier(backbone, tiny_surface_data, tmp_path, settings)
     state = torch.load(tmp_path / RESUME, weights_only=True)
     state["status"] = "interrupted"  # as if it had stopped
     torch.save(state, tmp_path / RESUME)
     (tmp_path / "train_history.json").unlink()
     with pytest.raises(ConfigError, match="train.batch_size is 8 but the run being resumed has 16"):
-        train_classifier(build_backbone("distance", hidden=8, k=4, layers=1), tiny_data, tmp_path,
+        train_classifier(build_backbone("distance", hidden=8, k=4, layers=1), tiny_surface_data, tmp_path,
                          TrainSettings(epochs=2, batch_size=8, threads=1, save_every=3), resume=True)
     with pytest.raises(ConfigError, match="the backbone differs"):
-        train_classifier(build_backbone("distance", hidden=16, k=4, layers=1), tiny_data, tmp_path, settings,
+        train_classifier(build_backbone("distance", hidden=16, k=4, layers=1), tiny_surface_data, tmp_path, settings,
                          resume=True)

@@ -2,16 +2,12 @@
 
 import json
 import math
-from pathlib import Path
 
 import pytest
 import torch
 
 from shapes.backbones import build_backbone
-from shapes.cli import main
 from shapes.train import TrainSettings, lr_factor, reflect_to_twins, train_classifier
-
-DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 
 
 @pytest.mark.parametrize("progress", [0.0, 0.1, 0.25, 0.5, 0.8, 1.0])
@@ -27,50 +23,42 @@ def test_lr_factor_is_a_cosine_after_warmup(progress):
     assert lr_factor(1.0, warmup) == pytest.approx(0.0, abs=1e-12)  # annealed to 0 at the end
 
 
-@pytest.fixture(scope="module")
-def tiny_data(tmp_path_factory):
-    root = tmp_path_factory.mktemp("train")
-    assert main(["sample", f"meshes={DEMO}", f"data={root / 'data'}", "sample.points=64",
-                 "sample.copies={train: 1, val: 1, test: 1}", "sample.oversample=1", "sample.twins=declared"]) == 0
-    return root / "data"
-
-
 def _backbone():
     return build_backbone("distance", hidden=8, k=4, layers=1)
 
 
-def test_an_exhausted_budget_stops_after_one_step_with_a_checkpoint(tiny_data, tmp_path):
+def test_an_exhausted_budget_stops_after_one_step_with_a_checkpoint(tiny_surface_data, tmp_path):
     # a budget of about a microsecond is spent before the second step can start
-    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+    ckpt = train_classifier(_backbone(), tiny_surface_data, tmp_path,
                             TrainSettings(epochs=5, batch_size=4, max_minutes=1e-8, threads=1))
     history = json.loads((tmp_path / "train_history.json").read_text())["history"]
     assert [row["steps"] for row in history] == [1]
     assert torch.load(ckpt, weights_only=True)["meta"]["epoch"] == 1
 
 
-def test_without_a_budget_every_epoch_runs(tiny_data, tmp_path):
-    train_classifier(_backbone(), tiny_data, tmp_path, TrainSettings(epochs=2, batch_size=8, threads=1))
+def test_without_a_budget_every_epoch_runs(tiny_surface_data, tmp_path):
+    train_classifier(_backbone(), tiny_surface_data, tmp_path, TrainSettings(epochs=2, batch_size=8, threads=1))
     history = json.loads((tmp_path / "train_history.json").read_text())["history"]
     n_train = 16 * 4  # classes x training instances (one copy each): at least that many clouds
     assert len(history) == 2 and history[-1]["steps"] == 2 * history[0]["steps"] >= 2 * n_train // 8
     assert history[-1]["lr"] < history[0]["lr"]  # annealing
 
 
-def test_mirror_option_is_validated(tiny_data, tmp_path):
+def test_mirror_option_is_validated(tiny_surface_data, tmp_path):
     from shapes.errors import ConfigError
 
     with pytest.raises(ConfigError, match="train.mirror"):
-        train_classifier(_backbone(), tiny_data, tmp_path, TrainSettings(epochs=1, mirror=1.5))
+        train_classifier(_backbone(), tiny_surface_data, tmp_path, TrainSettings(epochs=1, mirror=1.5))
 
 
-def test_mirror_training_runs_and_is_recorded(tiny_data, tmp_path):
-    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+def test_mirror_training_runs_and_is_recorded(tiny_surface_data, tmp_path):
+    ckpt = train_classifier(_backbone(), tiny_surface_data, tmp_path,
                             TrainSettings(epochs=1, batch_size=16, mirror=0.5, threads=1))
     assert torch.load(ckpt, weights_only=True)["meta"]["train"]["mirror"] == 0.5
 
 
-def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
-    meta = json.loads((tiny_data / "meta.json").read_text())
+def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_surface_data):
+    meta = json.loads((tiny_surface_data / "meta.json").read_text())
     classes = meta["classes"]
     twin_of = torch.tensor([classes.index(meta["twins"][c]) for c in classes])
     labels = torch.tensor([classes.index(n) for n in ("stud_rh", "bracket_left", "hex_nut", "spring_rh")])
@@ -92,12 +80,12 @@ def test_reflect_to_twins_mirrors_points_and_swaps_hands(tiny_data):
     assert torch.equal(x2, points) and torch.equal(y2, labels)
 
 
-def test_a_checkpoint_that_does_not_fit_the_network_code_gives_one_line(tiny_data, tmp_path):
+def test_a_checkpoint_that_does_not_fit_the_network_code_gives_one_line(tiny_surface_data, tmp_path):
     # common practice: a checkpoint from other network code must fail loudly, never load half its weights
     from shapes.errors import DataError
     from shapes.run import load_classifier
 
-    ckpt = train_classifier(_backbone(), tiny_data, tmp_path,
+    ckpt = train_classifier(_backbone(), tiny_surface_data, tmp_path,
                             TrainSettings(epochs=1, batch_size=16, threads=1, max_minutes=1e-8))
     model, _ = load_classifier(ckpt)  # the unchanged checkpoint loads
     payload = torch.load(ckpt, weights_only=True)

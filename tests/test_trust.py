@@ -11,6 +11,7 @@ from pathlib import Path
 import pytest
 import torch
 
+from conftest import one_error_line
 from shapes import _checks
 from shapes._atomic import atomic_dir, atomic_path, write_json
 from shapes.cli import main
@@ -19,17 +20,6 @@ from shapes.run import CLOCKED, TIMING
 
 TINY_TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=2",
               "train.batch_size=32", "train.threads=1", "hydra.run.dir=run"]
-
-
-def one_error_line(capsys) -> str:
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("error: "), err
-    return err[0]
-
-
-@pytest.fixture
-def tiny_data(tiny_surface_data):
-    return tiny_surface_data
 
 
 def _weights_hash(ckpt: Path) -> str:
@@ -52,13 +42,13 @@ def _train_and_eval(folder: Path, data: Path, seed: int, monkeypatch) -> tuple[s
 # ------------------------------------------------------------------ reproducibility
 
 
-def test_same_seed_same_run_and_another_seed_another_run(tiny_data, tmp_path, monkeypatch):
+def test_same_seed_same_run_and_another_seed_another_run(tiny_surface_data, tmp_path, monkeypatch):
     # common practice: a seeded run on one thread is repeatable bit for bit; a new seed is a new run
     torch.manual_seed(12345)  # disturb the global generator: the job must seed before it draws anything
-    a_weights, a_metrics = _train_and_eval(tmp_path / "a", tiny_data, 0, monkeypatch)
+    a_weights, a_metrics = _train_and_eval(tmp_path / "a", tiny_surface_data, 0, monkeypatch)
     torch.rand(7)
-    b_weights, b_metrics = _train_and_eval(tmp_path / "b", tiny_data, 0, monkeypatch)
-    c_weights, c_metrics = _train_and_eval(tmp_path / "c", tiny_data, 1, monkeypatch)
+    b_weights, b_metrics = _train_and_eval(tmp_path / "b", tiny_surface_data, 0, monkeypatch)
+    c_weights, c_metrics = _train_and_eval(tmp_path / "c", tiny_surface_data, 1, monkeypatch)
     assert a_weights == b_weights and a_metrics == b_metrics
     assert c_weights != a_weights and c_metrics != a_metrics
     # the clock readings stand apart, in timing.json, so that metrics.json can repeat byte for byte
@@ -67,12 +57,12 @@ def test_same_seed_same_run_and_another_seed_another_run(tiny_data, tmp_path, mo
     assert not set(CLOCKED) & set(json.loads(a_metrics)["cost"])
 
 
-def test_output_files_get_ordinary_modes_from_a_training_run(tiny_data, tmp_path, monkeypatch):
+def test_output_files_get_ordinary_modes_from_a_training_run(tiny_surface_data, tmp_path, monkeypatch):
     # POSIX open(2)/mkdir(2): a new file gets 0666 & ~umask, a folder 0777 & ~umask (0644 / 0755 under 022)
     old = os.umask(0o022)
     try:
         monkeypatch.chdir(tmp_path)
-        assert main(["train", f"data={tiny_data}", *TINY_TRAIN, "train.epochs=1"]) == 0
+        assert main(["train", f"data={tiny_surface_data}", *TINY_TRAIN, "train.epochs=1"]) == 0
     finally:
         os.umask(old)
     for name in ("checkpoint.pt", "train_history.json", "config.yaml"):
@@ -82,16 +72,16 @@ def test_output_files_get_ordinary_modes_from_a_training_run(tiny_data, tmp_path
 # ------------------------------------------------------------------ divergence
 
 
-def test_a_diverging_run_stops_with_one_line_and_writes_no_checkpoint(tiny_data, tmp_path, monkeypatch, capsys):
+def test_a_diverging_run_stops_with_one_line_and_writes_no_checkpoint(tiny_surface_data, tmp_path, monkeypatch, capsys):
     # from memory: AdamW steps are about lr in size, so lr = 1e30 overflows float32 (max 3.4e38) in a step or two
     monkeypatch.chdir(tmp_path)
-    assert main(["train", f"data={tiny_data}", *TINY_TRAIN, "train.lr=1e30", "hydra.run.dir=runs/train/x"]) == 2
+    assert main(["train", f"data={tiny_surface_data}", *TINY_TRAIN, "train.lr=1e30", "hydra.run.dir=runs/train/x"]) == 2
     line = one_error_line(capsys)
     assert "diverged" in line and "train.lr=1e+30" in line and "no checkpoint was written" in line
     assert not (tmp_path / "runs" / "train" / "x").exists()  # the empty run folder is removed
 
 
-def test_a_run_diverging_later_keeps_the_last_good_checkpoint(tiny_data, tmp_path, monkeypatch):
+def test_a_run_diverging_later_keeps_the_last_good_checkpoint(tiny_surface_data, tmp_path, monkeypatch):
     # common practice: a checkpoint is only replaced by a better finite model, never by a NaN one
     import shapes.train as train
     from shapes.backbones import build_backbone
@@ -99,7 +89,7 @@ def test_a_run_diverging_later_keeps_the_last_good_checkpoint(tiny_data, tmp_pat
     normal = train.lr_factor
     monkeypatch.setattr(train, "lr_factor", lambda p, w: normal(p, w) if p < 0.5 else 1e32)  # epoch 2 blows up
     with pytest.raises(TrainingError, match=r"diverged in epoch 2.*best checkpoint so far \(epoch 1\) is kept") as info:
-        train.train_classifier(build_backbone("distance", hidden=8, k=4, layers=1), tiny_data, tmp_path,
+        train.train_classifier(build_backbone("distance", hidden=8, k=4, layers=1), tiny_surface_data, tmp_path,
                                train.TrainSettings(epochs=2, batch_size=32, threads=1))
     assert "\n" not in str(info.value)
     payload = torch.load(tmp_path / "checkpoint.pt", weights_only=True)
@@ -159,9 +149,9 @@ def test_a_bad_value_in_a_sweep_is_refused_before_the_first_run(tmp_path, monkey
     assert not (tmp_path / "runs").exists()
 
 
-def test_a_bare_regime_is_one_regime_not_three_letters(tiny_data, tmp_path, monkeypatch):
+def test_a_bare_regime_is_one_regime_not_three_letters(tiny_surface_data, tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
-    assert main(["train", f"data={tiny_data}", *TINY_TRAIN, "train.epochs=1"]) == 0
+    assert main(["train", f"data={tiny_surface_data}", *TINY_TRAIN, "train.epochs=1"]) == 0
     assert main(["eval", "run=run", "eval.poses=any", "eval.repeats=1"]) == 0
     assert list(json.loads((tmp_path / "run" / "metrics.json").read_text())["regimes"]) == ["any"]
 
