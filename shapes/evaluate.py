@@ -4,7 +4,8 @@ Test regimes: ``cad`` (as modelled), ``upright`` (turned about the vertical axis
 (uniform random rotation) and ``mirrored`` (a reflection then a uniform rotation, scored against
 the mirror-twin map: a handed part's mirror image must be called its twin, an achiral part's
 mirror image keeps its class). Also accuracy against rotation angle and sensor noise, and the
-measured invariance error of the logits, so a claim of invariance is a number.
+measured invariance of the logits (rotation change, reflection change), so a claim of invariance
+is a number.
 
 Scans are a test condition of their own: when the test split holds single-view virtual scans
 (``sample.mode`` scan or mixed), every regime is also scored on the scans and on the full surfaces

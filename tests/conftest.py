@@ -1,6 +1,7 @@
 """Shared fixtures and helpers. Test files import the helpers by name (``from conftest import DEMO``):
 pytest puts tests/ on the path, and this module is the one pytest itself loaded."""
 
+import functools
 from pathlib import Path
 
 import numpy as np
@@ -10,6 +11,8 @@ DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 # `shapes sample` options of the tiny end-to-end pipeline (test_cli, test_compare): default mode (mixed)
 TINY_SAMPLE = ["sample.points=96", "sample.copies={train: 2, val: 1, test: 1}", "sample.oversample=1",
                "sample.twins=declared"]  # the demo's declared map; checking it is tested in test_parts_check_twins
+# `shapes train` options of the smallest network the training tests run: one distance layer of 8 features
+TINY_DISTANCE = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1"]
 
 
 @pytest.fixture(scope="session")
@@ -91,6 +94,65 @@ def posed_mesh(mesh, seed: int, shift=(12.0, -7.0, 3.0)):
     t[:3, 3] = shift
     out.apply_transform(t)
     return out
+
+
+# ---------------------------------------------------------------- solids of a known hand (twisted extrusion)
+
+
+def helix_turn(mesh) -> float:
+    """Turn (radians) of the cross-section's centre about +z from the bottom to the top layer,
+    counter-clockwise seen from +z positive; the vertices of one layer share one height."""
+    v = np.asarray(mesh.vertices)
+    levels = np.unique(np.round(v[:, 2], 6))
+    centres = np.array([v[np.isclose(v[:, 2], z, atol=1e-5), :2].mean(0) for z in levels])
+    return float(np.unwrap(np.arctan2(centres[:, 1], centres[:, 0]))[-1] - np.arctan2(centres[0, 1], centres[0, 0]))
+
+
+def _twisted(section, height: float, turn_degrees: float, hand: str):
+    """Extrude ``section`` (a manifold3d CrossSection) along +z, turning it by ``turn_degrees`` with the given hand.
+
+    from memory: ISO 5408 (screw thread vocabulary): a right-hand helix turns clockwise as it
+    recedes from the viewer, i.e. counter-clockwise seen from +z as it rises along +z.
+    """
+    import manifold3d as mf
+
+    from shapes.parts._mesh import to_trimesh
+
+    probe = to_trimesh(mf.Manifold.extrude(mf.CrossSection.circle(0.5, 16).translate((3.0, 0.0)), 1.0, 4, 30.0))
+    sign = 1.0 if helix_turn(probe) > 0 else -1.0  # the sign manifold3d gives a positive twist
+    twist = sign * turn_degrees * (1.0 if hand == "right" else -1.0)
+    # one layer per degree of turn: each ruled side face is split into nearly flat triangles, so a
+    # right- and a left-hand build differ by less than the detector's tolerance
+    mesh = to_trimesh(mf.Manifold.extrude(section, height, int(abs(turn_degrees)), twist))
+    assert mesh.is_watertight
+    return mesh
+
+
+@functools.lru_cache(maxsize=None)
+def coil(hand: str, turns: float = 2.0, pitch: float = 8.0):
+    """A helical rod: a round section 4 mm off the axis, swept ``turns`` times around it."""
+    import manifold3d as mf
+
+    section = mf.CrossSection.circle(1.2, 24).translate((4.0, 0.0))
+    mesh = _twisted(section, turns * pitch, 360.0 * turns, hand)
+    turn = helix_turn(mesh)
+    assert (turn > 0) == (hand == "right") and abs(abs(turn) - 2 * np.pi * turns) < 1e-6  # the hand is as named
+    return mesh
+
+
+@functools.lru_cache(maxsize=None)
+def twisted_bar(hand: str):
+    """A 6 x 3 mm bar, 30 mm long, twisted a third of a turn; its sides are split every 0.5 mm so
+    that the twisted side faces are followed closely."""
+    import manifold3d as mf
+
+    x = np.linspace(-3.0, 3.0, 13)[:-1]
+    y = np.linspace(-1.5, 1.5, 7)[:-1]
+    outline = np.concatenate([
+        np.stack([x, np.full_like(x, -1.5)], 1), np.stack([np.full_like(y, 3.0), y], 1),
+        np.stack([-x, np.full_like(x, 1.5)], 1), np.stack([np.full_like(y, -3.0), -y], 1),
+    ])  # counter-clockwise
+    return _twisted(mf.CrossSection([outline]), 30.0, 120.0, hand)
 
 
 # -- helpers shared by the backbone tests (import them: `from conftest import rotate, rel_change`) --------

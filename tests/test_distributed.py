@@ -11,13 +11,14 @@ from pathlib import Path
 import pytest
 import torch
 
+from conftest import TINY_DISTANCE
 from shapes.run import CHECKPOINT, RESUME
 
 # jitter, random poses and mirroring all draw from the run's generator: the global batch's draws
 # must be split between the processes exactly as one process makes them. Dropout masks are drawn
 # per process, so the comparison runs without dropout.
-TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=2",
-         "train.threads=1", "train.dropout=0", "train.poses=any", "train.jitter=0.01", "train.mirror=0.3"]
+TRAIN = [*TINY_DISTANCE, "train.epochs=2", "train.threads=1", "train.dropout=0", "train.poses=any",
+         "train.jitter=0.01", "train.mirror=0.3"]
 
 
 def _free_port() -> int:

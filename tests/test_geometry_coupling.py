@@ -7,7 +7,6 @@ import numpy as np
 import pytest
 import torch
 from scipy.special import sph_harm_y
-from sympy import Rational, sqrt
 from sympy.physics.quantum.cg import CG
 from sympy.physics.wigner import clebsch_gordan as sympy_clebsch_gordan
 from sympy.physics.wigner import wigner_3j
@@ -111,31 +110,31 @@ def test_one_one_one_is_the_cross_product():
     a = torch.randn(20, 3, generator=torch_generator(4), dtype=F64)
     b = torch.randn(20, 3, generator=torch_generator(5), dtype=F64)
     c = couple(clebsch_gordan(1, 1, 1), a[:, perm], b[:, perm])
-    # closed form: 1 x 1 -> 1 is the cross product; its constant is |<1 1; 1 0 | 1 1>| = 1/sqrt 2
-    # (reference: sympy.physics.quantum.cg.CG), the sign being the one fixed in the module docstring
-    assert abs(CG(1, 1, 1, 0, 1, 1).doit()) == 1 / sqrt(2)
-    assert torch.allclose(c, torch.linalg.cross(a, b)[:, perm] / math.sqrt(2), atol=1e-14)
-    # closed form: 1 x 1 -> 0 is the dot product; the z z term is the m = 0 entry, real in both bases:
-    # <1 0; 1 0 | 0 0> = -1/sqrt 3 (reference: sympy.physics.quantum.cg.CG)
-    assert CG(1, 0, 1, 0, 0, 0).doit() == -1 / sqrt(3)
+    # closed form: 1 x 1 -> 1 is the cross product times |<1 1; 1 0 | 1 1>| (= 1/sqrt 2; reference:
+    # sympy.physics.quantum.cg.CG), the sign being the one fixed in the module docstring
+    cross_factor = float(abs(CG(1, 1, 1, 0, 1, 1).doit()))
+    assert torch.allclose(c, torch.linalg.cross(a, b)[:, perm] * cross_factor, atol=1e-14)
+    # closed form: 1 x 1 -> 0 is the dot product times the m = 0 entry, real in both bases:
+    # <1 0; 1 0 | 0 0> (= -1/sqrt 3; reference: sympy.physics.quantum.cg.CG)
+    dot_factor = float(CG(1, 0, 1, 0, 0, 0).doit())
     s = couple(clebsch_gordan(1, 1, 0), a[:, perm], b[:, perm])[:, 0]
-    assert torch.allclose(s, -(a * b).sum(-1) / math.sqrt(3), atol=1e-14)
+    assert torch.allclose(s, (a * b).sum(-1) * dot_factor, atol=1e-14)
     # closed form: a x a = 0, while the symmetric 1 x 1 -> 2 part of (a, a) is not zero
     assert couple(clebsch_gordan(1, 1, 1), a, a).abs().max() < 1e-14
     assert couple(clebsch_gordan(1, 1, 2), a, a).abs().max() > 0.1
 
 
 def test_complex_values_against_sympy():
-    # reference: sympy.physics.quantum.cg.CG(1, 0, 1, 0, 2, 0).doit() = sqrt(2/3)
+    # reference: sympy.physics.quantum.cg.CG(j1, m1, j2, m2, j3, m3).doit(); the closed forms beside each
+    # from memory
+    assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0), float(CG(1, 0, 1, 0, 2, 0).doit()), rel_tol=1e-15)
     assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0), math.sqrt(2 / 3), rel_tol=1e-15)
-    assert CG(1, 0, 1, 0, 2, 0).doit() == sqrt(Rational(2, 3))
-    # reference: sympy.physics.quantum.cg.CG(1, 1, 1, -1, 1, 0).doit() = 1/sqrt 2
+    assert math.isclose(complex_clebsch_gordan(1, 1, 1, -1, 1, 0), float(CG(1, 1, 1, -1, 1, 0).doit()), rel_tol=1e-15)
     assert math.isclose(complex_clebsch_gordan(1, 1, 1, -1, 1, 0), 1 / math.sqrt(2), rel_tol=1e-15)
-    assert CG(1, 1, 1, -1, 1, 0).doit() == 1 / sqrt(2)
-    # reference: sympy.physics.wigner.wigner_3j(1, 1, 2, 0, 0, 0) = sqrt(30)/15, and the closed-form
-    # relation 3j = (-1)^(j1 - j2 - m3) / sqrt(2 j3 + 1) <j1 m1 j2 m2 | j3 -m3>
-    assert wigner_3j(1, 1, 2, 0, 0, 0) == sqrt(30) / 15
-    assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0) / math.sqrt(5), math.sqrt(30) / 15, rel_tol=1e-15)
+    # reference: sympy.physics.wigner.wigner_3j (= sqrt(30)/15 here), and the relation
+    # 3j = (-1)^(j1 - j2 - m3) / sqrt(2 j3 + 1) <j1 m1 j2 m2 | j3 -m3> (from memory)
+    three_j = float(wigner_3j(1, 1, 2, 0, 0, 0))
+    assert math.isclose(complex_clebsch_gordan(1, 0, 1, 0, 2, 0) / math.sqrt(5), three_j, rel_tol=1e-15)
     # reference: sympy.physics.wigner.clebsch_gordan over every entry with j <= 3
     for j1, j2, j3 in ALLOWED:
         for m1, m2 in itertools.product(range(-j1, j1 + 1), range(-j2, j2 + 1)):

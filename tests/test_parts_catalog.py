@@ -37,7 +37,9 @@ TRAITS = {
     "plain_washer": {"size band": (3, lambda p: _size_band(p["size"])), "chamfered": (2, lambda p: p["chamfered"])},
     "ball_bearing": {
         "series": (2, lambda p: p["designation"][:2]),
-        "bore band": (3, lambda p: int(p["designation"][2:]) // 2),  # bores 10-12, 15-17, 20-25 mm
+        # bores 10-12, 15-17, 20-25 mm (from memory: ISO 15 bore codes 00, 01, 02, 03 are 10, 12, 15, 17 mm,
+        # from 04 on five times the code)
+        "bore band": (3, lambda p: int(p["designation"][2:]) // 2),
         "sealed": (2, lambda p: p["sealed"]),
     },
     "spur_gear": {

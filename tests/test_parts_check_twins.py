@@ -1,68 +1,16 @@
 """check_twins: the mirror-twin map of a set of classes from geometry alone, checked against a
-declared map. Shapes with a known hand are built by twisted extrusion (manifold3d)."""
+declared map. Shapes with a known hand are built by twisted extrusion (coil and twisted_bar in conftest.py)."""
 
 from __future__ import annotations
 
-import functools
 import json
 
-import manifold3d as mf
-import numpy as np
 import pytest
 import trimesh
 
-from conftest import DEMO, posed_mesh as posed
+from conftest import DEMO, coil, posed_mesh as posed, twisted_bar
 from shapes.errors import DataError, InputError
 from shapes.parts import TwinReport, check_twins, mirror_mesh
-from shapes.parts._mesh import to_trimesh
-
-
-def helix_turn(mesh: trimesh.Trimesh) -> float:
-    """Turn (radians) of the cross-section's centre about +z from the bottom to the top layer,
-    counter-clockwise seen from +z positive; the vertices of one layer share one height."""
-    v = np.asarray(mesh.vertices)
-    levels = np.unique(np.round(v[:, 2], 6))
-    centres = np.array([v[np.isclose(v[:, 2], z, atol=1e-5), :2].mean(0) for z in levels])
-    return float(np.unwrap(np.arctan2(centres[:, 1], centres[:, 0]))[-1] - np.arctan2(centres[0, 1], centres[0, 0]))
-
-
-def _twisted(section: mf.CrossSection, height: float, turn_degrees: float, hand: str) -> trimesh.Trimesh:
-    """Extrude ``section`` along +z, turning it by ``turn_degrees`` with the given hand.
-
-    from memory: ISO 5408 (screw thread vocabulary): a right-hand helix turns clockwise as it
-    recedes from the viewer, i.e. counter-clockwise seen from +z as it rises along +z.
-    """
-    probe = to_trimesh(mf.Manifold.extrude(mf.CrossSection.circle(0.5, 16).translate((3.0, 0.0)), 1.0, 4, 30.0))
-    sign = 1.0 if helix_turn(probe) > 0 else -1.0  # the sign manifold3d gives a positive twist
-    twist = sign * turn_degrees * (1.0 if hand == "right" else -1.0)
-    # one layer per degree of turn: each ruled side face is split into nearly flat triangles, so a
-    # right- and a left-hand build differ by less than the detector's tolerance
-    mesh = to_trimesh(mf.Manifold.extrude(section, height, int(abs(turn_degrees)), twist))
-    assert mesh.is_watertight
-    return mesh
-
-
-@functools.lru_cache(maxsize=None)
-def coil(hand: str, turns: float = 2.0, pitch: float = 8.0) -> trimesh.Trimesh:
-    """A helical rod: a round section 4 mm off the axis, swept ``turns`` times around it."""
-    section = mf.CrossSection.circle(1.2, 24).translate((4.0, 0.0))
-    mesh = _twisted(section, turns * pitch, 360.0 * turns, hand)
-    turn = helix_turn(mesh)
-    assert (turn > 0) == (hand == "right") and abs(abs(turn) - 2 * np.pi * turns) < 1e-6  # the hand is as named
-    return mesh
-
-
-@functools.lru_cache(maxsize=None)
-def twisted_bar(hand: str) -> trimesh.Trimesh:
-    """A 6 x 3 mm bar, 30 mm long, twisted a third of a turn; its sides are split every 0.5 mm so
-    that the twisted side faces are followed closely."""
-    x = np.linspace(-3.0, 3.0, 13)[:-1]
-    y = np.linspace(-1.5, 1.5, 7)[:-1]
-    outline = np.concatenate([
-        np.stack([x, np.full_like(x, -1.5)], 1), np.stack([np.full_like(y, 3.0), y], 1),
-        np.stack([-x, np.full_like(x, 1.5)], 1), np.stack([np.full_like(y, -3.0), -y], 1),
-    ])  # counter-clockwise
-    return _twisted(mf.CrossSection([outline]), 30.0, 120.0, hand)
 
 
 @pytest.mark.slow

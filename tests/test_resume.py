@@ -2,6 +2,7 @@
 a run that was never stopped, bit for bit; the unfinished run is marked and refused meanwhile."""
 
 import json
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -9,7 +10,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from conftest import one_error_line
+from conftest import TINY_DISTANCE, one_error_line
 from shapes.backbones import build_backbone
 from shapes.cli import main
 from shapes.errors import ConfigError
@@ -17,8 +18,8 @@ from shapes.run import CHECKPOINT, RESUME
 from shapes.train import TrainSettings, train_classifier
 
 # 128 training clouds in batches of 16: 8 steps an epoch; a state every 3 steps
-TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=3",
-         "train.batch_size=16", "train.threads=1", "train.save_every=3", "train.jitter=0.01", "train.poses=any"]
+TRAIN = [*TINY_DISTANCE, "train.epochs=3", "train.batch_size=16", "train.threads=1", "train.save_every=3",
+         "train.jitter=0.01", "train.poses=any"]
 
 # the child kills itself with SIGKILL as its 14th optimiser step begins (epoch 2, after the forward and
 # backward passes): the last state on disk is step 12's, and steps 13 and 14 are lost with the process
@@ -56,7 +57,9 @@ def test_a_run_killed_mid_epoch_and_resumed_ends_bitwise_equal_to_one_never_stop
     whole = _shapes(["train", f"data={tiny_surface_data}", *TRAIN, "hydra.run.dir=whole"], tmp_path)
     assert whole.returncode == 0, whole.stderr
     killed = _shapes(["train", f"data={tiny_surface_data}", *TRAIN, "hydra.run.dir=cut"], tmp_path, KILLED_AT_STEP)
-    assert killed.returncode == -9, killed.stderr  # SIGKILL: no handler ran
+    # reference: Python's subprocess documentation, Popen.returncode: -N for a child ended by signal N;
+    # SIGKILL from the signal module (no handler can run)
+    assert killed.returncode == -signal.SIGKILL, killed.stderr
     cut = tmp_path / "cut"
     state = torch.load(cut / RESUME, weights_only=True)
     assert (state["epoch"], state["step"], state["position"], state["epoch_done"]) == (2, 12, 64, False)
@@ -81,9 +84,8 @@ def test_a_run_killed_mid_epoch_and_resumed_ends_bitwise_equal_to_one_never_stop
 
 def test_resuming_a_complete_run_or_with_other_options_gives_one_line(tiny_surface_data, tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
-    assert main(["train", f"data={tiny_surface_data}", "backbone=distance", "backbone.hidden=8", "backbone.k=4",
-                 "backbone.layers=1", "train.epochs=1", "train.batch_size=32", "train.threads=1",
-                 "hydra.run.dir=done"]) == 0
+    assert main(["train", f"data={tiny_surface_data}", *TINY_DISTANCE, "train.epochs=1", "train.batch_size=32",
+                 "train.threads=1", "hydra.run.dir=done"]) == 0
     capsys.readouterr()
     assert main(["train", "resume=done"]) == 2
     assert "the run is complete" in one_error_line(capsys)

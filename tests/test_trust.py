@@ -11,15 +11,14 @@ from pathlib import Path
 import pytest
 import torch
 
-from conftest import one_error_line
+from conftest import TINY_DISTANCE, one_error_line
 from shapes import _checks
 from shapes._atomic import atomic_dir, atomic_path, write_json
 from shapes.cli import main
 from shapes.errors import ConfigError, InputError, TrainingError
 from shapes.run import CLOCKED, TIMING
 
-TINY_TRAIN = ["backbone=distance", "backbone.hidden=8", "backbone.k=4", "backbone.layers=1", "train.epochs=2",
-              "train.batch_size=32", "train.threads=1", "hydra.run.dir=run"]
+TINY_TRAIN = [*TINY_DISTANCE, "train.epochs=2", "train.batch_size=32", "train.threads=1", "hydra.run.dir=run"]
 
 
 def _weights_hash(ckpt: Path) -> str:
@@ -73,7 +72,8 @@ def test_output_files_get_ordinary_modes_from_a_training_run(tiny_surface_data, 
 
 
 def test_a_diverging_run_stops_with_one_line_and_writes_no_checkpoint(tiny_surface_data, tmp_path, monkeypatch, capsys):
-    # from memory: AdamW steps are about lr in size, so lr = 1e30 overflows float32 (max 3.4e38) in a step or two
+    # from memory: AdamW steps are about lr in size (Loshchilov & Hutter 2019, "Decoupled weight decay
+    # regularization", Algorithm 2), so lr = 1e30 overflows float32 (max 3.4e38, IEEE 754 binary32) in a step or two
     monkeypatch.chdir(tmp_path)
     assert main(["train", f"data={tiny_surface_data}", *TINY_TRAIN, "train.lr=1e30", "hydra.run.dir=runs/train/x"]) == 2
     line = one_error_line(capsys)

@@ -7,7 +7,7 @@ graph with an absolute cutoff, its readout width and its option checks.
 import numpy as np
 import pytest
 import torch
-from conftest import rel_change, rotate
+from conftest import random_cloud, rel_change, rotate
 from scipy.spatial.transform import Rotation
 
 from shapes.backbones.vector_gate import VectorGateBackbone
@@ -24,11 +24,6 @@ def make(**options):
 def rotations(n, seed=0):
     # reference: rotation matrices from scipy.spatial.transform.Rotation (Haar-uniform)
     return torch.tensor(Rotation.random(n, random_state=seed).as_matrix(), dtype=torch.float64)
-
-
-def cloud(n=64, seed=3, batch=1):
-    gen = torch.Generator().manual_seed(seed)
-    return torch.randn(batch, n, 3, generator=gen, dtype=torch.float64)  # a generic cloud has no mirror symmetry
 
 
 def helix(n=64, handed=+1, dtype=torch.float64, seed=5):
@@ -99,7 +94,7 @@ def test_helicoid_hands_differ_by_their_normals_with_se3_only():
 def test_radius_graph_with_an_absolute_cutoff_is_invariant_too():
     # claim: docs/design.md, "Rotations" and "Translations" (the radius graph too); R from scipy
     model = make(radius=1.5, cutoff=1.5, k=12)
-    x = cloud()
+    x = random_cloud(seed=3)  # a generic cloud has no mirror symmetry
     R = rotations(10, seed=8)
     with torch.no_grad():
         ref = model(x)
@@ -114,10 +109,10 @@ def test_readout_width_follows_the_symmetry():
     assert handed.out_features == 2 * (S + 3 * V)  # mean + max of s, |v|, |a|, p
     assert blind.out_features == 2 * (S + V)  # mean + max of s, |v|
     with torch.no_grad():
-        assert handed(cloud()).shape == (1, handed.out_features)
-        assert blind(cloud(batch=2)).shape == (2, blind.out_features)
-        assert handed.forward_features(cloud())[0][(0, -1)].shape == (1, 64, V, 1)
-        assert (0, -1) not in blind.forward_features(cloud())[0]
+        assert handed(random_cloud(seed=3)).shape == (1, handed.out_features)
+        assert blind(random_cloud(2, seed=3)).shape == (2, blind.out_features)
+        assert handed.forward_features(random_cloud(seed=3))[0][(0, -1)].shape == (1, 64, V, 1)
+        assert (0, -1) not in blind.forward_features(random_cloud(seed=3))[0]
 
 
 @pytest.mark.parametrize(

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 import torch
 
+from conftest import DEMO, coil, one_error_line, posed_mesh, twisted_bar
 from shapes.backbones import build_backbone
 from shapes.cli import main
 from shapes.compare import pose_matrix
@@ -22,7 +23,6 @@ from shapes.report import CURVES, curve_scale, pyplot, run_report
 from shapes.seeding import seed_everything, torch_generator
 from shapes.train import TrainSettings, train_classifier
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_meshes"
 # five turned or bent parts of the demo catalog, all achiral: the angle curve is about poses alone
 FIVE = ("hex_nut", "stepped_shaft", "v_pulley", "bolted_flange", "bushing")
 
@@ -174,15 +174,13 @@ def handed_folder(tmp_path_factory):
     twisted bar whose twin is missing, and a cube; three posed copies each."""
     import trimesh
 
-    from test_parts_check_twins import coil, posed, twisted_bar
-
     root = tmp_path_factory.mktemp("handed") / "cat"
     shapes_ = {"coil_rh": coil("right"), "coil_lh": coil("left"), "bar_rh": twisted_bar("right"),
                "cube": trimesh.creation.box([8.0, 8.0, 8.0])}
     for k, (name, mesh) in enumerate(shapes_.items()):
         (root / name).mkdir(parents=True)
         for i in range(3):
-            posed(mesh, 10 * k + i).export(root / name / f"{name}_{i}.stl")
+            posed_mesh(mesh, 10 * k + i).export(root / name / f"{name}_{i}.stl")
     return root
 
 
@@ -242,8 +240,6 @@ def test_sample_derives_the_twins_a_folder_does_not_declare(handed_folder, tmp_p
 
 
 def test_a_bad_twins_option_gives_one_line(capsys):
-    from test_cli import one_error_line
-
     assert main(["sample", "sample.twins=maybe"]) == 2
     assert "sample.twins should be one of auto, derived, declared, got 'maybe' instead." in one_error_line(capsys)
 

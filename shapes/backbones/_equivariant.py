@@ -121,7 +121,7 @@ class EquivariantNorm(nn.Module):
     quantity), so they need their own normalisation to be heard; but where a neighbourhood is
     nearly mirror-symmetric all pseudo channels vanish at once, and a pure per-type RMS would blow
     rounding noise up to O(1) features. ``floor = 1e-2`` caps that gain at 10x the degree's scale
-    (float32 rotation error ~1e-5 instead of ~1e-3, while a helix and its mirror image still differ
+    (float32 rotation change ~1e-5 instead of ~1e-3, while a helix and its mirror image still differ
     by ~50% at initialisation).
     """
 
